@@ -1,0 +1,16 @@
+#!/usr/bin/env bash
+# Create .venv with volmag and its dependencies, on a machine that has only
+# Python 3.11. gmsh's wheel links to a few system graphics libraries; when they
+# are missing and we may use apt-get, install them.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+PY=${PYTHON:-python3}
+[ -x .venv/bin/python ] || "$PY" -m venv .venv
+.venv/bin/python -m pip install --quiet --upgrade pip
+.venv/bin/python -m pip install --quiet -e ".[test,viz]"
+if ! .venv/bin/python -c "import gmsh" 2>/dev/null; then
+  if command -v apt-get >/dev/null && [ "$(id -u)" = 0 ]; then
+    apt-get update -qq && apt-get install -y -qq libglu1-mesa libxcursor1 libxft2 libxinerama1 libgomp1 >/dev/null
+  fi
+  .venv/bin/python -c "import gmsh" || { echo "gmsh cannot be imported: install libGLU, libXcursor, libXft, libXinerama" >&2; exit 1; }
+fi

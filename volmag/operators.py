@@ -1,0 +1,139 @@
+"""Discrete interaction operators: from unknowns to the field they produce.
+
+Tetrahedra: reduced scalar potential with nodal unknowns (Carpentier, Chadebec,
+Galopin, Meunier & Bannwarth, IEEE Trans. Magn. 2013, from memory).  The total
+reduced potential phi is piecewise linear on the mesh, H = -grad phi is
+constant per tetrahedron and M = chi H.  Because H is a gradient of a continuous
+potential, the charge-free (solenoidal) modes of a piecewise-constant M cannot
+appear, which is what keeps interior M uniform at high susceptibility.  The
+field of M is that of its face charges sigma_f = n_f . (M_1 - M_2), and the
+equations are collocated at the nodes:
+
+    phi(x_i) - (1/4pi) sum_f sigma_f(phi) I_f(x_i) = phi_s(x_i),
+
+with I_f the single-layer integral of face f (:func:`kernels.triangle_potential`).
+
+Hexahedra on a regular grid: one uniform M per cell and the cell-averaged
+tensor of Newell, Williams & Dunlop (J. Geophys. Res. 1993), a Galerkin scheme
+with M_i = chi_i (H_s,i + sum_j T(c_i - c_j) M_j).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+from numba import njit, prange
+
+from . import kernels, newell
+
+# Local faces of a positively oriented tetrahedron, ordered so that the normal
+# (b - a) x (c - a) points out of the element. Face k is opposite vertex k.
+TET_FACES = np.array([[1, 2, 3], [0, 3, 2], [0, 1, 3], [0, 2, 1]])
+
+
+@dataclass(frozen=True, eq=False)
+class TetTopology:
+    """Faces of a tetrahedral mesh and the P1 gradient of every element.
+
+    faces (nf, 3) node indices, oriented outward of `owner`; owner/neighbour
+    (nf,) element indices (-1: boundary face); normals (nf, 3) unit, outward
+    of the owner; grads (ne, 3, 4): grad of the four barycentric functions
+    (1/m); volumes (ne,) m^3."""
+    faces: np.ndarray
+    owner: np.ndarray
+    neighbour: np.ndarray
+    normals: np.ndarray
+    grads: np.ndarray
+    volumes: np.ndarray
+
+
+def tet_topology(nodes: np.ndarray, tets: np.ndarray) -> TetTopology:
+    """Unique faces, face-element adjacency and P1 gradients of a tet mesh."""
+    local = tets[:, TET_FACES].reshape(-1, 3)           # (4 ne, 3), outward
+    elem = np.repeat(np.arange(len(tets)), 4)
+    _, first, inverse, counts = np.unique(np.sort(local, axis=1), axis=0, return_index=True,
+                                          return_inverse=True, return_counts=True)
+    if np.any(counts > 2):
+        raise ValueError("non-manifold tetrahedral mesh: a face is shared by more than two elements")
+    inverse = inverse.ravel()
+    faces = local[first]
+    owner = elem[first]
+    neighbour = np.full(len(first), -1)
+    other = np.ones(len(local), bool)
+    other[first] = False
+    neighbour[inverse[other]] = elem[other]
+    a, b, c = (nodes[faces[:, k]] for k in range(3))
+    n = np.cross(b - a, c - a)
+    normals = n / np.linalg.norm(n, axis=1)[:, None]
+    J = np.stack([nodes[tets[:, k]] - nodes[tets[:, 0]] for k in (1, 2, 3)], axis=2)  # columns
+    volumes = np.linalg.det(J) / 6.0
+    Jinv = np.linalg.inv(J)                              # rows: grad lambda_1..3
+    grads = np.concatenate([-Jinv.sum(axis=1, keepdims=True), Jinv], axis=1).transpose(0, 2, 1)
+    return TetTopology(faces, owner, neighbour, normals, grads, volumes)
+
+
+def charge_operator(topo: TetTopology, tets: np.ndarray, chi: np.ndarray, n_nodes: int) -> sp.csr_matrix:
+    """Sparse C with face charges sigma = C phi (A/m per A of potential... i.e.
+    1/m), for M_e = -chi_e grad(phi) on each element; chi (ne, 3, 3)."""
+    rows, cols, vals = [], [], []
+    for side, sign in ((topo.owner, 1.0), (topo.neighbour, -1.0)):
+        f = np.flatnonzero(side >= 0)
+        e = side[f]
+        # sigma contribution: sign * n_f . M_e = -sign * n_f^T chi_e G_e phi_e
+        coef = -sign * np.einsum("fi,fij,fjk->fk", topo.normals[f], chi[e], topo.grads[e])
+        rows.append(np.repeat(f, 4))
+        cols.append(tets[e].ravel())
+        vals.append(coef.ravel())
+    C = sp.coo_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
+                      shape=(len(topo.faces), n_nodes)).tocsr()
+    C.sum_duplicates()
+    C.eliminate_zeros()
+    return C
+
+
+@njit(parallel=True, cache=True)
+def _potential_rows(points, nodes, faces, indptr, indices, data, out):
+    """out[i, :] -= (1/4pi) sum_f I_f(points[i]) C[f, :] for faces with charge."""
+    inv4pi = 1.0 / (4.0 * np.pi)
+    for i in prange(points.shape[0]):
+        p = points[i]
+        for f in range(faces.shape[0]):
+            if indptr[f + 1] == indptr[f]:
+                continue
+            s = inv4pi * kernels.triangle_potential(p, nodes[faces[f, 0]], nodes[faces[f, 1]],
+                                                    nodes[faces[f, 2]])
+            for k in range(indptr[f], indptr[f + 1]):
+                out[i, indices[k]] -= s * data[k]
+
+
+def nodal_potential_matrix(nodes: np.ndarray, topo: TetTopology, C: sp.csr_matrix) -> np.ndarray:
+    """Dense collocation matrix A = I - S C of the nodal formulation (n x n)."""
+    n = len(nodes)
+    A = np.zeros((n, n))
+    _potential_rows(nodes, nodes, topo.faces, C.indptr, C.indices, C.data, A)
+    A[np.diag_indices(n)] += 1.0
+    return A
+
+
+def potential_of_charges(points: np.ndarray, nodes: np.ndarray, faces: np.ndarray,
+                         sigma: np.ndarray) -> np.ndarray:
+    """Scalar potential (A) at points (n,3) m of face charges sigma (A/m)."""
+    tri = nodes[faces]
+    return kernels.face_potential_at_points(np.ascontiguousarray(points, dtype=float), tri, sigma)
+
+
+def grid_tensor_blocks(grid_index: np.ndarray, cell_size: np.ndarray) -> np.ndarray:
+    """Dense Newell interaction matrix (3n x 3n) of hex cells on one grid:
+    block (i, j) = T(c_i - c_j), the cell-averaged field in cell i of unit M in
+    cell j (dimensionless)."""
+    n = len(grid_index)
+    d = grid_index[:, None, :] - grid_index[None, :, :]
+    lo = d.reshape(-1, 3).min(axis=0)
+    span = d.reshape(-1, 3).max(axis=0) - lo + 1
+    # Tensors depend on the offset only: evaluate each distinct offset once.
+    ox, oy, oz = np.meshgrid(*(np.arange(lo[k], lo[k] + span[k]) for k in range(3)), indexing="ij")
+    offsets = np.stack([ox.ravel(), oy.ravel(), oz.ravel()], axis=1)
+    table = newell.cell_tensors(offsets * cell_size, np.asarray(cell_size, float))
+    flat = np.ravel_multi_index((d - lo).reshape(-1, 3).T, span)
+    return table[flat].reshape(n, n, 3, 3).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
