@@ -127,7 +127,7 @@ def cylinder_demag_magnetometric(radius: float, height: float) -> tuple[float, f
 
 
 # ---------------------------------------------- Newell tensor, extended precision
-def _mp_newell_f(mp, x, y, z):
+def newell_f_mp(mp, x, y, z):
     """Newell, Williams & Dunlop, J. Geophys. Res. 98, 9551 (1993), f (from
     memory; tests check d^2/dy^2 d^2/dz^2 f = 1/r)."""
     x, y, z = abs(x), abs(y), abs(z)
@@ -142,7 +142,7 @@ def _mp_newell_f(mp, x, y, z):
     return s
 
 
-def _mp_newell_g(mp, x, y, z):
+def newell_g_mp(mp, x, y, z):
     """Newell et al. (1993) g (from memory; tests check
     d/dx d/dy d^2/dz^2 g = 1/r)."""
     sign = mp.sign(x) * mp.sign(y)
@@ -186,7 +186,7 @@ def newell_tensor_mp(offset, cell, dps: int = 60) -> np.ndarray:
             return s
 
         scale = -1 / (4 * mpmath.pi * d[0] * d[1] * d[2])
-        xx, yy, zz = (stencil(_mp_newell_f, *p) for p in ((0, 1, 2), (1, 0, 2), (2, 1, 0)))
-        xy, xz, yz = (stencil(_mp_newell_g, *p) for p in ((0, 1, 2), (0, 2, 1), (1, 2, 0)))
+        xx, yy, zz = (stencil(newell_f_mp, *p) for p in ((0, 1, 2), (1, 0, 2), (2, 1, 0)))
+        xy, xz, yz = (stencil(newell_g_mp, *p) for p in ((0, 1, 2), (0, 2, 1), (1, 2, 0)))
         T = [[xx, xy, xz], [xy, yy, yz], [xz, yz, zz]]
         return np.array([[float(scale * v) for v in row] for row in T])

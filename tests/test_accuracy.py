@@ -16,8 +16,8 @@ import volmag as vm
 from reference import ellipsoid_demag_factors, prism_demag_tensor
 
 
-def tet_body(shape, chi, size, name="b", **kw):
-    return vm.Body(name, shape, vm.LinearMaterial("m", chi), mesh=vm.MeshSpec("tet", size), **kw)
+def tet_body(shape, chi, size, name="b", surface_size=None, **kw):
+    return vm.Body(name, shape, vm.LinearMaterial("m", chi), mesh=vm.MeshSpec("tet", size, surface_size), **kw)
 
 
 ELLIPSOIDS = {
@@ -32,8 +32,8 @@ ELLIPSOIDS = {
 def ellipsoid_models():
     out = {}
     for name, axes in ELLIPSOIDS.items():
-        size = 0.22 * min(axes) ** 0.5
-        model = vm.Model.build([tet_body(vm.Ellipsoid(axes), 0.0, size)])
+        scale = min(axes) ** 0.5
+        model = vm.Model.build([tet_body(vm.Ellipsoid(axes), 0.0, 0.45 * scale, surface_size=0.11 * scale)])
         assert model.mesh.n_cells <= 10_000
         out[name] = model
     return out
@@ -61,7 +61,7 @@ def test_ellipsoid_chi10_against_osborn(ellipsoid_models, name):
 
 @pytest.mark.parametrize("chi", [1e3, 1e5])
 def test_sphere_high_chi_uniform_interior(chi):
-    model = vm.Model.build([tet_body(vm.Sphere(1.0), chi, 0.2)])
+    model = vm.Model.build([tet_body(vm.Sphere(1.0), chi, 0.3, surface_size=0.09)])
     assert model.mesh.n_cells <= 10_000
     sol = vm.solve(model, [vm.UniformField((0.0, 0.0, 1.0))])
     assert sol.converged
@@ -78,7 +78,7 @@ def test_sphere_high_chi_uniform_interior(chi):
 def test_cube_chi1000_tets_agree_with_hexes():
     """No closed form exists; two discretisations must agree (common practice)."""
     chi = 1000.0
-    tet = vm.Model.build([tet_body(vm.Box((1.0, 1.0, 1.0)), chi, 0.12)])
+    tet = vm.Model.build([tet_body(vm.Box((1.0, 1.0, 1.0)), chi, 0.15, surface_size=0.05)])
     hexes = vm.Model.build([vm.Body("b", vm.Box((1.0, 1.0, 1.0)), vm.LinearMaterial("m", chi),
                                     mesh=vm.MeshSpec("hex", 1 / 12))])
     Xt = vm.demag_tensor(tet, "b").apparent_susceptibility[2, 2]
@@ -107,3 +107,19 @@ def test_chi0_tensor_trace_symmetry_and_rotation():
     assert abs(np.trace(N0) - 1) < 2e-3
     assert np.allclose(N0, N0.T, atol=2e-3)
     assert np.allclose(N1, R @ N0 @ R.T, atol=3e-3)
+
+
+def test_sphere_error_falls_at_second_order():
+    """Apparent susceptibility of a sphere, chi = 10, on uniformly refined
+    meshes: the error against chi / (1 + chi/3) falls as h^2 (piecewise-linear
+    potential on an inscribed polyhedron), h = (V / elements)^(1/3)."""
+    chi, ref = 10.0, 10.0 / (1 + 10.0 / 3)
+    h, err = [], []
+    for size in (0.5, 0.3, 0.18):
+        model = vm.Model.build([tet_body(vm.Sphere(1.0), chi, size)])
+        sol = vm.solve(model, [vm.UniformField((0.0, 0.0, 1.0))])
+        h.append((model.mesh.volumes().sum() / model.mesh.n_cells) ** (1 / 3))
+        err.append(abs(sol.mean_M()[2] / ref - 1))
+    order = np.polyfit(np.log(h), np.log(err), 1)[0]
+    assert 1.6 < order < 2.6, (h, err, order)
+    assert err[-1] < err[0] / 3

@@ -14,10 +14,10 @@ import numpy as np
 import pytest
 from scipy import integrate, special
 
-from reference import (_mp_newell_f, _mp_newell_g, cylinder_demag_magnetometric,
-                       ellipsoid_apparent_susceptibility, ellipsoid_demag_factors,
-                       newell_tensor_mp, oblate_spheroid_axial_factor, prism_demag_factor,
-                       prism_demag_tensor, prolate_spheroid_axial_factor)
+from reference import (cylinder_demag_magnetometric, ellipsoid_apparent_susceptibility,
+                       ellipsoid_demag_factors, newell_f_mp, newell_g_mp, newell_tensor_mp,
+                       oblate_spheroid_axial_factor, prism_demag_factor, prism_demag_tensor,
+                       prolate_spheroid_axial_factor)
 from volmag import newell
 
 CUBE = (1.0, 1.0, 1.0)
@@ -45,8 +45,8 @@ def test_extended_precision_f_and_g_solve_their_defining_equations(p):
         mp = mpmath.mp
         x, y, z = (mpmath.mpf(v) for v in p)
         inv_r = 1 / mpmath.sqrt(x * x + y * y + z * z)
-        f_yyzz = mpmath.diff(lambda b, c: _mp_newell_f(mp, x, b, c), (y, z), (2, 2))
-        g_xyzz = mpmath.diff(lambda a, b, c: _mp_newell_g(mp, a, b, c), (x, y, z), (1, 1, 2))
+        f_yyzz = mpmath.diff(lambda b, c: newell_f_mp(mp, x, b, c), (y, z), (2, 2))
+        g_xyzz = mpmath.diff(lambda a, b, c: newell_g_mp(mp, a, b, c), (x, y, z), (1, 1, 2))
         assert abs(f_yyzz / inv_r - 1) < 1e-15
         assert abs(g_xyzz / inv_r - 1) < 1e-15
 

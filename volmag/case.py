@@ -305,10 +305,15 @@ def _mesh(ctx, tab, path) -> MeshSpec:
         return MeshSpec()
     mpath = path + ("mesh",)
     m = ctx.table(tab, path, "mesh")
-    ctx.keys(m, mpath, (), ("element", "size"))
+    ctx.keys(m, mpath, (), ("element", "size", "surface_size"))
     element = ctx.string(m, mpath, "element", choices=("tet", "hex"), default="tet")
-    size = ctx.metres(ctx.number(m["size"], mpath + ("size",), positive=True)) if "size" in m else None
-    return MeshSpec(element, size)
+    size, surface = (ctx.metres(ctx.number(m[k], mpath + (k,), positive=True)) if k in m else None
+                     for k in ("size", "surface_size"))
+    if surface is not None and element == "hex":
+        raise ctx.error(mpath + ("surface_size",), "surface_size applies to tet meshes only")
+    if surface is not None and size is not None and surface > size:
+        raise ctx.error(mpath + ("surface_size",), f"must not exceed size ({size:g} m)")
+    return MeshSpec(element, size, surface)
 
 
 def _source(ctx, tab, path) -> UniformField:

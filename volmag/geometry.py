@@ -167,9 +167,13 @@ class Cut:
 @dataclass(frozen=True)
 class MeshSpec:
     """How to mesh a body: "tet" (gmsh) or "hex" (regular voxel grid).
-    `size` is the target element edge length (m); None picks one from the body."""
+    `size` is the target element edge length (m); None picks one from the body.
+    `surface_size` (m, tets only) refines the elements at the body's surface,
+    growing to `size` inside: the surface charges carry most of the error, so
+    a graded mesh reaches a given accuracy with several times fewer elements."""
     element: str = "tet"
     size: float | None = None
+    surface_size: float | None = None
 
 
 @dataclass(frozen=True)

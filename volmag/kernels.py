@@ -451,3 +451,18 @@ def face_potential_at_points(points, faces, sigma):
                 acc += sigma[f] * triangle_potential(points[i], faces[f, 0], faces[f, 1], faces[f, 2])
         phi[i] = acc * INV_4PI
     return phi
+
+
+@njit(parallel=True, cache=True)
+def face_potentials_at_points(points, faces, sigmas):
+    """Potentials (n, k), A, at points (n, 3), m, of k sets of uniform surface
+    charges sigmas (m, k), A/m, on the same triangles faces (m, 3, 3), m: each
+    triangle integral is evaluated once for all k charge sets."""
+    k = sigmas.shape[1]
+    phi = np.zeros((points.shape[0], k))
+    for i in prange(points.shape[0]):
+        for f in range(faces.shape[0]):
+            s = triangle_potential(points[i], faces[f, 0], faces[f, 1], faces[f, 2]) * INV_4PI
+            for j in range(k):
+                phi[i, j] += sigmas[f, j] * s
+    return phi

@@ -257,15 +257,18 @@ def _mesh_tets(bodies, verbose):
 def mesh_body_tets(body: Body, h: float, *, verbose: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Tetrahedralise one body with target edge `h` (m); returns nodes (n, 3)
     in model coordinates (m) and positively oriented tets (m, 4)."""
-    boundary = _boundary_triangulation(body, h, verbose) if _uses_surface(body) else None
+    hs = min(h, body.mesh.surface_size or h)
+    boundary = _boundary_triangulation(body, hs, verbose) if _uses_surface(body) else None
     with _gmsh_session(verbose):
-        _set_mesh_options(h)
+        _set_mesh_options(h, hs)
         if boundary is not None:
             _add_discrete_volume(*boundary)
         else:
             _add_occ_body(body)
         if not gmsh.model.getEntities(3):
             raise ValueError(f"body {body.name!r} is empty after its cuts")
+        if hs < h:
+            _grade_from_surface(hs, h)
         try:
             gmsh.model.mesh.generate(3)
             gmsh.model.mesh.optimize("Netgen")
@@ -303,10 +306,25 @@ def _gmsh_session(verbose: bool):
             gmsh.model.setCurrent(previous)
 
 
-def _set_mesh_options(h: float) -> None:
+def _grade_from_surface(hs: float, h: float) -> None:
+    """Element size hs on the body's surfaces, growing linearly to h over a
+    distance of 3 h into the body (gmsh Distance + Threshold fields)."""
+    field = gmsh.model.mesh.field
+    dist = field.add("Distance")
+    field.setNumbers(dist, "SurfacesList", [t for _, t in gmsh.model.getEntities(2)])
+    field.setNumber(dist, "Sampling", 50)
+    ramp = field.add("Threshold")
+    for key, value in (("InField", dist), ("SizeMin", hs), ("SizeMax", h), ("DistMin", 0.0),
+                       ("DistMax", 3.0 * h)):
+        field.setNumber(ramp, key, value)
+    field.setAsBackgroundMesh(ramp)
+    gmsh.option.setNumber("Mesh.MeshSizeExtendFromBoundary", 0)
+
+
+def _set_mesh_options(h: float, hs: float | None = None) -> None:
     opt = gmsh.option.setNumber
     opt("Mesh.MeshSizeMax", h)
-    opt("Mesh.MeshSizeMin", MIN_SIZE_FRACTION * h)
+    opt("Mesh.MeshSizeMin", MIN_SIZE_FRACTION * min(h, hs or h))
     opt("Mesh.MeshSizeFromCurvature", CURVATURE_POINTS)
     # HXT, then Netgen's optimiser (see mesh_body_tets): as good as Delaunay +
     # Netgen on round bodies, and unlike it leaves no slivers in thin plates

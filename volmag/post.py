@@ -147,11 +147,8 @@ def _uniform_demag(model) -> np.ndarray:
     qp = np.einsum("qk,fkd->fqd", kernels.TRI_RULE_POINTS, tri).reshape(-1, 3)
     qw = (area[:, None] * kernels.TRI_RULE_WEIGHTS[None, :]).ravel()
     qn = np.repeat(normals, len(kernels.TRI_RULE_WEIGHTS), axis=0)
-    N = np.zeros((3, 3))
-    for j in range(3):
-        phi = kernels.face_potential_at_points(qp, tri, np.ascontiguousarray(normals[:, j]))
-        N[:, j] = (qw * phi) @ qn / vol.sum()
-    return N
+    phi = kernels.face_potentials_at_points(qp, tri, np.ascontiguousarray(normals))   # (q, 3)
+    return (qn * qw[:, None]).T @ phi / vol.sum()
 
 
 def section_points(model, axis: int, n: int = 80) -> np.ndarray:
