@@ -5,6 +5,7 @@ Layout (format version 1):
                    length_unit, created (UTC, ISO 8601)
   /case            the case text, verbatim
   /mesh            nodes (m), cells, body_id; attributes cell_type, body_names
+                   hex meshes also cell_size (m), grid_index, grid_origin (m)
   /solution        M, H (A/m) and B (T) per element
   /demag/<body>    N (3x3), chi (3x3), apparent_susceptibility; attribute fluxmetric
   /probes/<name>   points (m), H (A/m), B, B_applied (T)
@@ -55,6 +56,9 @@ def _fill(f: h5py.File, run, version: str) -> None:
     g.create_dataset("cells", data=mesh.cells)
     g.create_dataset("body_id", data=mesh.body_id)
     g.attrs["cell_type"] = mesh.cell_type
+    if mesh.cell_type == "hex":  # the regular grid, needed to locate points and rebuild faces
+        for k in ("cell_size", "grid_index", "grid_origin"):
+            g.create_dataset(k, data=getattr(mesh, k))
     g.attrs["body_names"] = [b.name for b in run.model.bodies]
     for s in run.model.mesh_stats:
         g.attrs[f"stats_{s.body}"] = s.summary()
