@@ -1,0 +1,47 @@
+"""Solver mechanics: memory refusal, Krylov convergence and its history."""
+import numpy as np
+import pytest
+
+import volmag as vm
+from volmag.krylov import gmres
+
+
+def sphere_model(chi=100.0, size=0.5):
+    return vm.Model.build([vm.Body("s", vm.Sphere(1.0), vm.LinearMaterial("m", chi), mesh=vm.MeshSpec("tet", size))])
+
+
+def test_refuses_dense_operator_over_memory_limit():
+    model = sphere_model()
+    with pytest.raises(vm.SolverError, match="GiB"):
+        vm.solve(model, [vm.UniformField((0, 0, 1.0))], vm.SolverOptions(memory_limit=1e5))
+
+
+def test_unavailable_method_is_refused():
+    with pytest.raises(vm.SolverError, match="not available"):
+        vm.solve(sphere_model(), [vm.UniformField((0, 0, 1.0))], vm.SolverOptions(method="fmm"))
+
+
+def test_history_records_true_residual():
+    sol = vm.solve(sphere_model(), [vm.UniformField((0, 0, 1.0))], vm.SolverOptions(tolerance=1e-12))
+    assert sol.converged and sol.residual <= 1e-12
+    assert sol.history[0] == pytest.approx(1.0) and sol.history[-1] == sol.residual
+    assert len(sol.history) == sol.iterations + 1
+
+
+def test_gmres_solves_nonsymmetric_system_without_preconditioner():
+    """Against numpy's direct solve (LAPACK)."""
+    rng = np.random.default_rng(0)
+    A = np.eye(60) * 4 + rng.standard_normal((60, 60)) * 0.3
+    b = rng.standard_normal(60)
+    res = gmres(lambda x: A @ x, b, tol=1e-12, restart=15, maxiter=400)
+    assert res.converged
+    assert np.allclose(res.x, np.linalg.solve(A, b), rtol=1e-9, atol=1e-11)
+    assert np.linalg.norm(b - A @ res.x) / np.linalg.norm(b) <= 1.01e-12
+
+
+def test_linear_response_scales_with_field():
+    """Linearity: doubling the applied field doubles M (superposition)."""
+    model = sphere_model(chi=50.0)
+    a = vm.solve(model, [vm.UniformField((0, 0, 1.0))])
+    b = vm.solve(model, [vm.UniformField((0, 0, 1.0)), vm.UniformField((0, 0, 1.0))])
+    assert np.allclose(b.M, 2 * a.M, rtol=1e-9, atol=1e-12)
