@@ -30,8 +30,7 @@ def charged_faces(mesh, M: np.ndarray, topo=None) -> tuple[np.ndarray, np.ndarra
     together produce the field of the element-wise uniform M (ne, 3)."""
     if mesh.cell_type == "tet":
         topo = topo or operators.tet_topology(mesh.nodes, mesh.cells)
-        jump = M[topo.owner] - np.where(topo.neighbour[:, None] >= 0, M[topo.neighbour], 0.0)
-        sigma = np.einsum("fi,fi->f", topo.normals, jump)
+        sigma = operators.face_charges(topo, M)
         keep = sigma != 0
         return mesh.nodes[topo.faces[keep]], sigma[keep]
     centres, half = mesh.centroids(), 0.5 * np.asarray(mesh.cell_size)
@@ -115,7 +114,7 @@ def demag_tensor(model, body: str, options=None, fluxmetric_axis: str | None = N
         flux = _fluxmetric_uniform(sub, fluxmetric_axis) if fluxmetric_axis else None
         return DemagResult(body, chi, N, None, flux, fluxmetric_axis)
     system = DenseSystem(sub, options or SolverOptions(), progress)
-    solutions = [system.solve([UniformField(tuple(np.eye(3)[j]))]) for j in range(3)]
+    solutions = system.solve_many([[UniformField(tuple(np.eye(3)[j]))] for j in range(3)])
     for s in solutions:
         if not s.converged:
             raise RuntimeError(f"demag solve of body {body!r} did not converge (residual {s.residual:.2e})")

@@ -22,7 +22,7 @@ from . import operators
 from .krylov import gmres
 from .meshing import Mesh, mesh_model
 from .progress import QUIET, Progress
-from .sources import total_source_field, total_source_potential
+from .sources import total_source_field
 from .units import MU0
 
 
@@ -83,7 +83,8 @@ class Model:
 @dataclass(frozen=True, eq=False)
 class Solution:
     """Solved state. Per element: M, H (A/m) and B (T), arrays (ne, 3);
-    `potential` (nodal, A) for tetrahedral meshes."""
+    `potential`: for tetrahedral meshes the nodal scalar potential (A) of the
+    magnetisation alone (H = H_applied - grad potential)."""
     model: Model
     sources: tuple
     M: np.ndarray
@@ -145,7 +146,7 @@ def dense_memory_estimate(mesh: Mesh) -> tuple[int, float]:
         n = len(mesh.nodes)
         return n, 12.0 * n * n
     n = 3 * mesh.n_cells
-    return n, 12.0 * n * n + 200.0 * mesh.n_cells ** 2
+    return n, 20.0 * n * n    # K and A in double, the factor in single
 
 
 def check_method(mesh: Mesh, options: SolverOptions) -> str:
@@ -182,7 +183,7 @@ class DenseSystem:
         else:
             progress(f"assembling cell operator: {3 * mesh.n_cells} unknowns")
             self.K = operators.grid_tensor_blocks(mesh.grid_index, mesh.cell_size)
-            self.A = np.eye(3 * mesh.n_cells) - _block_rows(chi, self.K)
+            self.A = _identity_minus_chi_K(chi, self.K)
         self.assembly_seconds = time.perf_counter() - t0
         progress(f"assembled in {self.assembly_seconds:.1f} s")
         self._factor(np.float32)
@@ -197,16 +198,48 @@ class DenseSystem:
     def _precond(self, r):
         return sla.lu_solve(self.lu, r.astype(self.lu[0].dtype), check_finite=False).astype(float)
 
-    def rhs(self, sources) -> np.ndarray:
-        mesh = self.model.mesh
-        if mesh.cell_type == "tet":
-            return total_source_potential(sources, mesh.nodes)
-        Hs = total_source_field(sources, mesh.centroids())
-        return np.einsum("eij,ej->ei", self.model.element_chi(), Hs).ravel()
+    def source_field(self, sources) -> np.ndarray:
+        """Applied field averaged over each element (ne, 3), A/m."""
+        return operators.element_average(self.model.mesh, lambda p: total_source_field(sources, p))
+
+    def rhs(self, source_fields) -> np.ndarray:
+        """Right-hand sides (unknowns, k) for k element-averaged applied fields.
+        Tets: potential at the nodes of the charges of chi H_s (reduced
+        potential formulation); hexes: chi H_s per cell."""
+        chi = self.model.element_chi()
+        m = [np.einsum("eij,ej->ei", chi, Hs) for Hs in source_fields]
+        if self.model.mesh.cell_type == "tet":
+            sigma = np.stack([operators.face_charges(self.topo, mk) for mk in m], axis=1)
+            return operators.potentials_at_nodes(self.model.mesh.nodes, self.topo, sigma)
+        return np.stack([mk.ravel() for mk in m], axis=1)
 
     def solve(self, sources) -> Solution:
+        """Solve for one set of sources."""
+        return self.solve_many([sources])[0]
+
+    def solve_many(self, source_sets) -> list[Solution]:
+        """Solve for several sets of sources with one factorisation (and, for
+        tets, one pass over the mesh for all right-hand sides)."""
         t0 = time.perf_counter()
-        b = self.rhs(sources)
+        source_sets = [tuple(s) for s in source_sets]
+        fields = [self.source_field(s) for s in source_sets]
+        B = self.rhs(fields)
+        out = []
+        for k, sources in enumerate(source_sets):
+            x, result, history = self._krylov(B[:, k])
+            M, H = self.fields(x, fields[k])
+            out.append(Solution(self.model, sources, M, H, x if self.model.mesh.cell_type == "tet" else None,
+                                result.converged, len(history) - 1, result.residual, tuple(history),
+                                self.method, len(x),
+                                time.perf_counter() - t0 + self.assembly_seconds + self.factor_seconds,
+                                {"assembly_seconds": self.assembly_seconds,
+                                 "factor_seconds": self.factor_seconds,
+                                 "factor_precision": self.factor_dtype}))
+        return out
+
+    def _krylov(self, b: np.ndarray):
+        """GMRES preconditioned by the LU factor; refactorise in double
+        precision if the single-precision factor is not good enough."""
         opts = self.options
 
         def report(it, res):
@@ -221,29 +254,29 @@ class DenseSystem:
             result = gmres(lambda x: self.A @ x, b, self._precond, x0=result.x, tol=opts.tolerance,
                            maxiter=opts.max_iterations, callback=report)
             history += list(result.history[1:])
-        M, H, phi = self.fields(result.x, sources)
-        return Solution(self.model, tuple(sources), M, H, phi, result.converged, len(history) - 1,
-                        result.residual, tuple(history), self.method, len(b),
-                        time.perf_counter() - t0 + self.assembly_seconds + self.factor_seconds,
-                        {"assembly_seconds": self.assembly_seconds, "factor_seconds": self.factor_seconds,
-                         "factor_precision": self.factor_dtype})
+        return result.x, result, history
 
-    def fields(self, x: np.ndarray, sources):
-        """Per-element M and H (A/m) from the unknowns; nodal potential or None."""
+    def fields(self, x: np.ndarray, Hs: np.ndarray):
+        """Per-element M and H (A/m) from the unknowns and the element-averaged
+        applied field Hs. Tets: H = Hs - grad(phi_M); hexes: H = Hs + K M."""
         mesh = self.model.mesh
         if mesh.cell_type == "tet":
-            H = -np.einsum("eik,ek->ei", self.topo.grads, x[mesh.cells])
-            M = np.einsum("eij,ej->ei", self.chi, H)
-            return M, H, x
+            H = Hs - np.einsum("eik,ek->ei", self.topo.grads, x[mesh.cells])
+            return np.einsum("eij,ej->ei", self.chi, H), H
         M = x.reshape(-1, 3)
-        H = total_source_field(sources, mesh.centroids()) + (self.K @ x).reshape(-1, 3)
-        return M, H, None
+        return M, Hs + (self.K @ x).reshape(-1, 3)
 
 
-def _block_rows(chi: np.ndarray, K: np.ndarray) -> np.ndarray:
-    """blockdiag(chi) @ K without forming the block-diagonal matrix."""
+def _identity_minus_chi_K(chi: np.ndarray, K: np.ndarray, rows: int = 256) -> np.ndarray:
+    """I - blockdiag(chi) K, built a few cells at a time."""
     n = len(chi)
-    return np.einsum("eij,ejk->eik", chi, K.reshape(n, 3, -1)).reshape(3 * n, -1)
+    A = np.empty_like(K)
+    for start in range(0, n, rows):
+        stop = min(start + rows, n)
+        Kr = K[3 * start:3 * stop].reshape(stop - start, 3, -1)
+        A[3 * start:3 * stop] = -np.einsum("eij,ejk->eik", chi[start:stop], Kr).reshape(-1, 3 * n)
+    A[np.diag_indices(3 * n)] += 1.0
+    return A
 
 
 def solve(model: Model, sources, options: SolverOptions = SolverOptions(),
