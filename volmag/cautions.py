@@ -27,3 +27,8 @@ def stray_field_cautions(max_B: float) -> tuple[str, ...]:
     """The cautions that apply where the flux density reaches `max_B` (T):
     all of them at or above the 0.5 mT line, none below it."""
     return STRAY_FIELD_CAUTIONS if max_B >= IMPLANT_LIMIT_T else ()
+
+#: One-line form for figure captions.
+SHORT_CAUTION = ("Caution: 0.5 mT is the limit usually posted for implanted medical devices (common practice); "
+                 "strong fields pull in loose ferromagnetic objects and magnetised parts can pinch. "
+                 "Follow local codes and licensed practice.")

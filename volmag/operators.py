@@ -1,15 +1,16 @@
 """Discrete interaction operators: from unknowns to the field they produce.
 
 Tetrahedra: reduced scalar potential with nodal unknowns (Carpentier, Chadebec,
-Galopin, Meunier & Bannwarth, IEEE Trans. Magn. 2013, from memory).  The total
-reduced potential phi is piecewise linear on the mesh, H = -grad phi is
-constant per tetrahedron and M = chi H.  Because H is a gradient of a continuous
+Galopin, Meunier & Bannwarth, IEEE Trans. Magn. 2013, from memory).  The
+potential phi of the magnetisation is piecewise linear on the mesh, the field
+H = H_s - grad phi is constant per tetrahedron (H_s averaged over it) and
+M = chi H.  Because the unknown part of H is the gradient of a continuous
 potential, the charge-free (solenoidal) modes of a piecewise-constant M cannot
 appear, which is what keeps interior M uniform at high susceptibility.  The
 field of M is that of its face charges sigma_f = n_f . (M_1 - M_2), and the
 equations are collocated at the nodes:
 
-    phi(x_i) - (1/4pi) sum_f sigma_f(phi) I_f(x_i) = phi_s(x_i),
+    phi(x_i) - (1/4pi) sum_f sigma_f(phi) I_f(x_i) = (1/4pi) sum_f sigma_f(H_s) I_f(x_i),
 
 with I_f the single-layer integral of face f (:func:`kernels.triangle_potential`).
 
