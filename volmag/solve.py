@@ -73,6 +73,16 @@ class Model:
         per_body = np.array([b.material.chi_tensor(b.placement.rotation_matrix()) for b in self.bodies])
         return per_body[self.mesh.body_id]
 
+    def element_remanence(self) -> np.ndarray:
+        """Remanent magnetisation (ne, 3), A/m, of every element, model axes."""
+        per_body = np.array([b.material.remanence_vector(b.placement.rotation_matrix()) for b in self.bodies])
+        return per_body[self.mesh.body_id]
+
+    @property
+    def is_linear(self) -> bool:
+        """True when every material is linear (M = M0 + chi H)."""
+        return all(b.material.is_linear for b in self.bodies)
+
     def only(self, name: str) -> "Model":
         """The model restricted to one body (for that body's own demag tensor)."""
         i = self.body_index(name)
@@ -206,8 +216,8 @@ class DenseSystem:
         """Right-hand sides (unknowns, k) for k element-averaged applied fields.
         Tets: potential at the nodes of the charges of chi H_s (reduced
         potential formulation); hexes: chi H_s per cell."""
-        chi = self.model.element_chi()
-        m = [np.einsum("eij,ej->ei", chi, Hs) for Hs in source_fields]
+        chi, M0 = self.model.element_chi(), self.model.element_remanence()
+        m = [np.einsum("eij,ej->ei", chi, Hs) + M0 for Hs in source_fields]
         if self.model.mesh.cell_type == "tet":
             sigma = np.stack([operators.face_charges(self.topo, mk) for mk in m], axis=1)
             return operators.potentials_at_nodes(self.model.mesh.nodes, self.topo, sigma)
@@ -262,7 +272,7 @@ class DenseSystem:
         mesh = self.model.mesh
         if mesh.cell_type == "tet":
             H = Hs - np.einsum("eik,ek->ei", self.topo.grads, x[mesh.cells])
-            return np.einsum("eij,ej->ei", self.chi, H), H
+            return np.einsum("eij,ej->ei", self.chi, H) + self.model.element_remanence(), H
         M = x.reshape(-1, 3)
         return M, Hs + (self.K @ x).reshape(-1, 3)
 
@@ -281,5 +291,9 @@ def _identity_minus_chi_K(chi: np.ndarray, K: np.ndarray, rows: int = 256) -> np
 
 def solve(model: Model, sources, options: SolverOptions = SolverOptions(),
           progress: Progress = QUIET) -> Solution:
-    """Magnetisation of the model's bodies in the field of `sources`."""
+    """Magnetisation of the model's bodies in the field of `sources` (linear
+    materials: one Krylov solve; nonlinear: Newton, see volmag.nonlinear)."""
+    if not model.is_linear:
+        from .nonlinear import solve_nonlinear
+        return solve_nonlinear(model, tuple(sources), options, progress)
     return DenseSystem(model, options, progress).solve(tuple(sources))

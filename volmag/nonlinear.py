@@ -1,0 +1,173 @@
+"""Nonlinear materials: Newton's method on the same discrete operator.
+
+Unknowns x are those of the linear solver (nodal potential of M for tets, M
+per cell for hexes). With the element law M = M(H) the residual is
+
+    tets:  R(x) = x - S sigma(M(H_s - G x))      (S: single-layer, sigma: face charges)
+    hexes: R(x) = x - M(H_s + K x)
+
+and its exact Jacobian replaces chi in the linear operator by dM/dH per
+element: the differential susceptibility along H and the chord
+susceptibility across it. Each Newton correction is solved by GMRES,
+preconditioned by an LU factor of the current Jacobian (single precision),
+warm-started from the previous correction; a backtracking line search on |R|
+guards each step, with a damped fixed-point step as the fallback
+(Kelley, Solving Nonlinear Equations with Newton's Method, SIAM 2003).
+Convergence needs both the residual and the change in M below tolerance;
+otherwise the best state reached is returned marked as not converged.
+"""
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import scipy.linalg as sla
+from numba import njit, prange
+
+from . import kernels, operators
+from .krylov import gmres
+from .progress import QUIET
+from .solve import SolverError, Solution, available_memory
+from .sources import total_source_field
+
+
+@njit(parallel=True, cache=True)
+def _single_layer(points, tri, out):
+    """out[i, f] = I_f(points[i]) / 4pi (m)."""
+    for i in prange(points.shape[0]):
+        for f in range(tri.shape[0]):
+            out[i, f] = kernels.triangle_potential(points[i], tri[f, 0], tri[f, 1], tri[f, 2]) * kernels.INV_4PI
+
+
+class ElementLaw:
+    """M(H) and dM/dH for every element of a model, body by body."""
+
+    def __init__(self, model):
+        self.parts = []
+        for i, body in enumerate(model.bodies):
+            R = body.placement.rotation_matrix()
+            self.parts.append((np.flatnonzero(model.mesh.body_id == i), body.material, R))
+
+    def magnetisation(self, H):
+        M = np.zeros_like(H)
+        for idx, mat, R in self.parts:
+            if mat.is_linear:
+                M[idx] = H[idx] @ mat.chi_tensor(R).T + mat.remanence_vector(R)
+            else:
+                M[idx] = mat.magnetisation(H[idx])
+        return M
+
+    def jacobian(self, H):
+        J = np.zeros(H.shape + (3,))
+        for idx, mat, R in self.parts:
+            J[idx] = mat.chi_tensor(R) if mat.is_linear else mat.jacobian(H[idx])
+        return J
+
+
+class _TetProblem:
+    def __init__(self, model, Hs, progress):
+        mesh = model.mesh
+        self.mesh, self.Hs = mesh, Hs
+        self.topo = operators.tet_topology(mesh.nodes, mesh.cells)
+        n, nf = len(mesh.nodes), len(self.topo.faces)
+        need = 8.0 * n * nf + 20.0 * n * n
+        if need > 0.7 * available_memory():
+            raise SolverError(f"the nonlinear solve of {n} unknowns needs {need / 2**30:.1f} GiB "
+                              "(single-layer matrix and Jacobian); use a coarser mesh")
+        progress(f"assembling single-layer matrix: {n} nodes x {nf} faces")
+        self.S = np.empty((n, nf))
+        _single_layer(mesh.nodes, mesh.nodes[self.topo.faces], self.S)
+        self.n = n
+
+    def field(self, x):
+        return self.Hs - np.einsum("eik,ek->ei", self.topo.grads, x[self.mesh.cells])
+
+    def residual(self, x, M):
+        return x - self.S @ operators.face_charges(self.topo, M)
+
+    def jacobian(self, JM):
+        C = operators.charge_operator(self.topo, self.mesh.cells, JM, self.n)
+        A = -(C.T @ self.S.T).T
+        A[np.diag_indices(self.n)] += 1.0
+        return A
+
+
+class _HexProblem:
+    def __init__(self, model, Hs, progress):
+        progress(f"assembling cell operator: {3 * model.mesh.n_cells} unknowns")
+        self.K = operators.grid_tensor_blocks(model.mesh.grid_index, model.mesh.cell_size)
+        self.Hs, self.n = Hs, 3 * model.mesh.n_cells
+
+    def field(self, x):
+        return self.Hs + (self.K @ x).reshape(-1, 3)
+
+    def residual(self, x, M):
+        return x - M.ravel()
+
+    def jacobian(self, JM):
+        from .solve import _identity_minus_chi_K
+        return _identity_minus_chi_K(JM, self.K)
+
+
+def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60,
+                    m_tolerance: float = 1e-6) -> Solution:
+    """Newton solve for models with nonlinear materials. `options.tolerance`
+    bounds the relative residual |R| / |x|; `m_tolerance` the relative change
+    of M in the last step."""
+    t0 = time.perf_counter()
+    mesh = model.mesh
+    Hs = operators.element_average(mesh, lambda p: total_source_field(sources, p))
+    problem = (_TetProblem if mesh.cell_type == "tet" else _HexProblem)(model, Hs, progress)
+    law = ElementLaw(model)
+    x = np.zeros(problem.n)
+    history, best = [], None
+    dx_prev = None
+    converged = False
+    for step in range(max_steps + 1):
+        H = problem.field(x)
+        M = law.magnetisation(H)
+        R = problem.residual(x, M)
+        scale = max(np.linalg.norm(x), np.linalg.norm(R), 1e-300)
+        res = np.linalg.norm(R) / scale
+        if best is None or res < best[0]:
+            best = (res, x.copy(), M, H)
+        if history:
+            history[-1]["residual"] = res
+            dM = history[-1]["dM"]
+            progress(f"  Newton {step:3d}  residual {res:.3e}  dM {dM:.2e}  "
+                     f"step {history[-1]['step']:.3g}  GMRES {history[-1]['linear_iterations']}")
+            if res <= options.tolerance and dM <= m_tolerance:
+                converged = True
+                break
+        if step == max_steps:
+            break
+        A = problem.jacobian(law.jacobian(H))
+        lu = sla.lu_factor(A.astype(np.float32), check_finite=False)
+
+        def precond(r):
+            return sla.lu_solve(lu, r.astype(np.float32), check_finite=False).astype(float)
+
+        lin = gmres(lambda v: A @ v, -R, precond, x0=dx_prev, tol=min(1e-3, 0.1 * res) if step else 1e-6,
+                    maxiter=200)
+        dx, t = lin.x, 1.0
+        rnorm = np.linalg.norm(R)
+        while t > 1 / 64:
+            xt = x + t * dx
+            if np.linalg.norm(problem.residual(xt, law.magnetisation(problem.field(xt)))) < (1 - 1e-4 * t) * rnorm:
+                break
+            t /= 2
+        else:   # Newton direction failed: damped fixed-point step x <- x - R/2
+            dx, t = -R, 0.5
+        x_new = x + t * dx
+        M_new = law.magnetisation(problem.field(x_new))
+        dM = np.linalg.norm(M_new - M) / max(np.linalg.norm(M_new), 1e-300)
+        history.append({"step": t, "linear_iterations": lin.iterations, "dM": dM, "residual": np.nan})
+        dx_prev, x = t * dx, x_new
+    res, x, M, H = best
+    if not converged:
+        progress(f"Newton did not converge: best residual {res:.3e}")
+    seconds = time.perf_counter() - t0
+    newton = [(h["residual"], h["step"], h["linear_iterations"], h["dM"]) for h in history]
+    return Solution(model, tuple(sources), M, H, x if mesh.cell_type == "tet" else None, converged,
+                    len(history), float(res), tuple(h["residual"] for h in history), "dense", problem.n,
+                    seconds, {"newton_history": newton, "nonlinear": True})
