@@ -114,10 +114,10 @@ MALFORMED = [
                                   BODY, SOURCE), "material[0].susceptibility", "symmetric"),
     ("tensor eigenvalue <= -1", case(HEAD.replace("1000", "[[0, 2, 0], [2, 0, 0], [0, 0, 1]]  # <-"),
                                      BODY, SOURCE), "material[0].susceptibility", "eigenvalues"),
-    ("nonlinear material", case(HEAD.replace("susceptibility = 1000", 'bh_curve = "iron.csv"  # <-'),
-                                BODY, SOURCE), "material[0].bh_curve", "not supported in this version"),
-    ("permanent magnet", case(HEAD, 'remanence = [0, 0, 1.2]  # <-\n', BODY, SOURCE),
-     "material[0].remanence", "not supported in this version"),
+    ("missing B-H curve file", case(HEAD.replace("susceptibility = 1000", 'bh_curve = "iron.csv"  # <-'),
+                                    BODY, SOURCE), "material[0].bh_curve", "not found"),
+    ("zero remanence", case(HEAD, 'remanence = [0, 0, 0]  # <-\n', BODY, SOURCE),
+     "material[0].remanence", "zero vector"),
     ("zero rotation axis", case(HEAD, BODY, """\
         rotation = {axis = [0, 0, 0], angle_deg = 30}  # <-
         """, SOURCE), "body[0].rotation.axis", "must not be zero"),

@@ -25,8 +25,9 @@ import numpy as np
 
 from .geometry import (Body, Box, Cut, Cylinder, Ellipsoid, MeshSpec, Placement, Sphere,
                        SurfaceFile, Tube, local_bounds)
-from .materials import LinearMaterial
-from .probes import Probe
+from .materials import BHCurve, BHCurveError, LinearMaterial, PermanentMagnet
+from .probes import KINDS as PROBE_KINDS, Probe
+from .run import parse_quantity
 from .solve import SolverOptions
 from .sources import UniformField
 from .units import LENGTH_UNITS
@@ -34,10 +35,11 @@ from .units import LENGTH_UNITS
 # Parts of the design this version reads but cannot solve yet: naming them
 # gives a clear "not supported" instead of "unknown key", so a later version
 # only has to lift the check.
-_FUTURE_MATERIAL_KEYS = ("bh_curve", "remanence")
-_FUTURE_SOURCES = ("loop", "coil", "bar", "arc", "dipole")
+MATERIAL_LAW_KEYS = ("bh_curve", "remanence", "knee_field")
+FUTURE_SOURCES = ("loop", "coil", "bar", "arc", "dipole")
 
-_SHAPE_SIZES = {
+#: Shape types and the size keys each one needs (lengths in the file's unit).
+SHAPE_SIZES = {
     "box": ("size",),
     "sphere": ("radius",),
     "ellipsoid": ("semi_axes",),
@@ -45,11 +47,35 @@ _SHAPE_SIZES = {
     "tube": ("inner_radius", "outer_radius", "height"),
     "file": ("path",),
 }
+_SIZE_KEYS = tuple(dict.fromkeys(k for keys in SHAPE_SIZES.values() for k in keys))
+
+#: Every key a case file may hold, by table ("" is the top level; indices of
+#: arrays of tables are left out; rotation tables of bodies and of subtracted
+#: shapes share "body.rotation"). The parser accepts nothing else, and
+#: docs/case-files.md documents every one of them (a test holds the two together).
+KEYS = {
+    "": ("title", "length_unit", "material", "body", "source", "probe", "solver", "demag", "expect"),
+    "material": ("name", "susceptibility") + MATERIAL_LAW_KEYS,
+    "body": ("name", "material", "shape", "position", "rotation", "mesh"),
+    "body.shape": ("type",) + _SIZE_KEYS + ("subtract",),
+    "body.shape.subtract": ("type",) + _SIZE_KEYS + ("position", "rotation"),
+    "body.rotation": ("axis", "angle_deg"),
+    "body.mesh": ("element", "size", "surface_size"),
+    "source": ("type", "H", "B"),
+    "probe": ("name",) + PROBE_KINDS,
+    "probe.line": ("start", "end", "n"),
+    "probe.plane": ("origin", "u", "v", "n"),
+    "probe.box": ("min", "max", "n"),
+    "solver": ("method", "tolerance", "max_iterations"),
+    "demag": ("bodies", "fluxmetric"),
+    "expect": ("quantity", "value", "rel_tol", "abs_tol"),
+}
+
+SOURCE_TYPES = ("uniform",) + FUTURE_SOURCES
+SOLVER_METHODS = ("auto", "dense", "fft", "fmm")
+MESH_ELEMENTS = ("tet", "hex")
+AXES = ("x", "y", "z")
 _SURFACE_SUFFIXES = (".stl", ".obj", ".ply")
-_SOLVER_METHODS = ("auto", "dense", "fft", "fmm")
-_AXES = ("x", "y", "z")
-_EXPECT_ROOTS = ("demag", "bodies", "solver", "probes")
-_SOLVER_QUANTITIES = ("iterations", "residual", "unknowns", "seconds", "converged")
 _MAX_PROBE_POINTS = 10_000_000
 _NAME_RE = re.compile(r"^[A-Za-z0-9_-]+$")   # names end up in dotted paths and HDF5 groups
 _COMPONENT_RE = re.compile(r"^[A-Za-z0-9_-]+(\[\d+\])?$")
@@ -147,8 +173,7 @@ def _parse(text: str, path: str, base_dir: Path, data: bytes) -> Case:
 # The schema
 
 def _case(ctx: "_Context", doc: dict, text: str, sha: str) -> Case:
-    ctx.keys(doc, (), ("title",), ("length_unit", "material", "body", "source", "probe",
-                                  "solver", "demag", "expect"))
+    ctx.keys(doc, (), KEYS[""], required=("title",))
     title = ctx.string(doc, (), "title")
     unit = ctx.string(doc, (), "length_unit", choices=tuple(LENGTH_UNITS), default="m")
     ctx.unit = unit
@@ -172,7 +197,7 @@ def _case(ctx: "_Context", doc: dict, text: str, sha: str) -> Case:
             raise ctx.error(("source",), f"body {magnetic[0]!r} is magnetic but there is no [[source]] "
                                          "and no [demag] table: nothing drives it")
 
-    expects = tuple(_expect(ctx, tab, ("expect", i), names, [p.name for p in probes], demag)
+    expects = tuple(_expect(ctx, tab, ("expect", i), names, {p.name: len(p.points) for p in probes}, demag)
                     for i, tab in enumerate(ctx.tables(doc, "expect")))
     _check_overlaps(ctx, bodies)
     return Case(title=title, length_unit=unit, path=ctx.file, text=text, sha256=sha,
@@ -192,18 +217,33 @@ def _named(ctx, doc, key, build) -> list:
     return out
 
 
-def _material(ctx, tab, path) -> LinearMaterial:
-    ctx.keys(tab, path, ("name",), ("susceptibility",) + _FUTURE_MATERIAL_KEYS)
+def _material(ctx, tab, path):
+    ctx.keys(tab, path, KEYS["material"], required=("name",))
     name = ctx.string(tab, path, "name")
     if "bh_curve" in tab:
-        ctx.string(tab, path, "bh_curve")
-        for other in ("susceptibility", "remanence"):
+        for other in ("susceptibility", "remanence", "knee_field"):
             if other in tab:
                 raise ctx.error(path + (other,), "cannot be combined with bh_curve")
-        raise ctx.error(path + ("bh_curve",), "nonlinear B(H) materials are not supported in this version")
+        rel = ctx.string(tab, path, "bh_curve")
+        file = (ctx.base_dir / rel).resolve()
+        if not file.is_file():
+            raise ctx.error(path + ("bh_curve",), f"B-H curve file not found: {file}")
+        try:
+            return BHCurve.from_csv(file, name)
+        except (BHCurveError, OSError, UnicodeDecodeError) as e:
+            raise ctx.error(path + ("bh_curve",), f"bad B-H curve: {e}") from None
     if "remanence" in tab:
-        ctx.vector(tab["remanence"], path + ("remanence",))
-        raise ctx.error(path + ("remanence",), "permanent magnets are not supported in this version")
+        Br = ctx.vector(tab["remanence"], path + ("remanence",))
+        if not np.any(Br):
+            raise ctx.error(path + ("remanence",), "must not be the zero vector")
+        chi = ctx.number(tab["susceptibility"], path + ("susceptibility",)) if "susceptibility" in tab else 0.0
+        if not chi > -1:
+            raise ctx.error(path + ("susceptibility",), f"must be > -1 (got {chi:g})")
+        knee = (ctx.number(tab["knee_field"], path + ("knee_field",), positive=True)
+                if "knee_field" in tab else None)
+        return PermanentMagnet(name, Br, chi, knee)
+    if "knee_field" in tab:
+        raise ctx.error(path + ("knee_field",), "applies to permanent magnets (with remanence) only")
     if "susceptibility" not in tab:
         raise ctx.error(path + ("susceptibility",), "missing required key")
     return LinearMaterial(name, _susceptibility(ctx, tab["susceptibility"], path + ("susceptibility",)))
@@ -230,7 +270,7 @@ def _susceptibility(ctx, value, path):
 
 
 def _body(ctx, tab, path, materials) -> Body:
-    ctx.keys(tab, path, ("name", "material", "shape"), ("position", "rotation", "mesh"))
+    ctx.keys(tab, path, KEYS["body"], required=("name", "material", "shape"))
     name = ctx.name(tab, path)
     mat = ctx.string(tab, path, "material")
     if mat not in materials:
@@ -242,19 +282,21 @@ def _body(ctx, tab, path, materials) -> Body:
     return Body(name, shape, materials[mat], _placement(ctx, tab, path), cuts, _mesh(ctx, tab, path))
 
 
-def _shape(ctx, tab, path, extra=("subtract",)):
-    """A shape table in the case's length unit -> geometry shape in metres."""
+def _shape(ctx, tab, path, table="body.shape"):
+    """A shape table in the case's length unit -> geometry shape in metres;
+    `table` is its entry in KEYS."""
     if "type" not in tab:  # a misspelt "type" is best reported as such
-        ctx.keys(tab, path, (), ("type",) + sum(_SHAPE_SIZES.values(), ()) + extra)
-    kind = ctx.string(tab, path, "type", choices=tuple(_SHAPE_SIZES))
-    ctx.keys(tab, path, ("type",) + _SHAPE_SIZES[kind], extra)
+        ctx.keys(tab, path, KEYS[table])
+    kind = ctx.string(tab, path, "type", choices=tuple(SHAPE_SIZES))
+    required = ("type",) + SHAPE_SIZES[kind]
+    ctx.keys(tab, path, required + tuple(k for k in KEYS[table] if k not in required + _SIZE_KEYS), required)
     if kind == "box":
         return Box(ctx.metres(ctx.vector(tab["size"], path + ("size",), positive=True)))
     if kind == "ellipsoid":
         return Ellipsoid(ctx.metres(ctx.vector(tab["semi_axes"], path + ("semi_axes",), positive=True)))
     if kind == "file":
         return _surface_file(ctx, tab, path)
-    size = {k: ctx.metres(ctx.number(tab[k], path + (k,), positive=True)) for k in _SHAPE_SIZES[kind]}
+    size = {k: ctx.metres(ctx.number(tab[k], path + (k,), positive=True)) for k in SHAPE_SIZES[kind]}
     if kind == "tube" and not size["inner_radius"] < size["outer_radius"]:
         raise ctx.error(path + ("inner_radius",), "must be smaller than outer_radius")
     return {"sphere": Sphere, "cylinder": Cylinder, "tube": Tube}[kind](**size)
@@ -278,7 +320,7 @@ def _surface_file(ctx, tab, path) -> SurfaceFile:
 
 
 def _cut(ctx, tab, path, parent) -> Cut:
-    shape = _shape(ctx, tab, path, extra=("position", "rotation"))
+    shape = _shape(ctx, tab, path, table="body.shape.subtract")
     cut = Cut(shape, _placement(ctx, tab, path))
     lo, hi = local_bounds(parent)
     clo, chi = Body("cut", shape, None, cut.placement).bounds()  # the cut as if a body, parent frame
@@ -293,7 +335,7 @@ def _placement(ctx, tab, path) -> Placement:
         return Placement(pos)
     rpath = path + ("rotation",)
     rot = ctx.table(tab, path, "rotation")
-    ctx.keys(rot, rpath, ("axis", "angle_deg"))
+    ctx.keys(rot, rpath, KEYS["body.rotation"], required=KEYS["body.rotation"])
     axis = ctx.vector(rot["axis"], rpath + ("axis",))
     if not np.linalg.norm(axis) > 0:
         raise ctx.error(rpath + ("axis",), "the rotation axis must not be zero")
@@ -305,8 +347,8 @@ def _mesh(ctx, tab, path) -> MeshSpec:
         return MeshSpec()
     mpath = path + ("mesh",)
     m = ctx.table(tab, path, "mesh")
-    ctx.keys(m, mpath, (), ("element", "size", "surface_size"))
-    element = ctx.string(m, mpath, "element", choices=("tet", "hex"), default="tet")
+    ctx.keys(m, mpath, KEYS["body.mesh"])
+    element = ctx.string(m, mpath, "element", choices=MESH_ELEMENTS, default="tet")
     size, surface = (ctx.metres(ctx.number(m[k], mpath + (k,), positive=True)) if k in m else None
                      for k in ("size", "surface_size"))
     if surface is not None and element == "hex":
@@ -317,10 +359,10 @@ def _mesh(ctx, tab, path) -> MeshSpec:
 
 
 def _source(ctx, tab, path) -> UniformField:
-    kind = ctx.string(tab, path, "type", choices=("uniform",) + _FUTURE_SOURCES)
-    if kind in _FUTURE_SOURCES:
+    kind = ctx.string(tab, path, "type", choices=SOURCE_TYPES)
+    if kind in FUTURE_SOURCES:
         raise ctx.error(path + ("type",), f"{kind!r} sources are not supported in this version")
-    ctx.keys(tab, path, ("type",), ("H", "B"))
+    ctx.keys(tab, path, KEYS["source"], required=("type",))
     if "H" in tab and "B" in tab:
         raise ctx.error(path + ("B",), "give either H (A/m) or B (T), not both")
     if "H" in tab:
@@ -331,13 +373,12 @@ def _source(ctx, tab, path) -> UniformField:
 
 
 def _probe(ctx, tab, path) -> Probe:
-    kinds = ("points", "line", "plane", "box")
-    ctx.keys(tab, path, ("name",), kinds)
+    ctx.keys(tab, path, KEYS["probe"], required=("name",))
     name = ctx.name(tab, path)
-    given = [k for k in kinds if k in tab]
+    given = [k for k in PROBE_KINDS if k in tab]
     if len(given) != 1:
         where = path + (given[1],) if len(given) > 1 else path
-        raise ctx.error(where, f"a probe needs exactly one of {', '.join(kinds)}")
+        raise ctx.error(where, f"a probe needs exactly one of {', '.join(PROBE_KINDS)}")
     kind, m = given[0], ctx.metres
     kpath = path + (kind,)
     if kind == "points":
@@ -347,21 +388,21 @@ def _probe(ctx, tab, path) -> Probe:
         return Probe.from_points(name, [m(ctx.vector(p, kpath + (i,))) for i, p in enumerate(tab["points"])])
     spec = ctx.table(tab, path, kind)
     if kind == "line":
-        ctx.keys(spec, kpath, ("start", "end", "n"))
+        ctx.keys(spec, kpath, KEYS["probe.line"], required=KEYS["probe.line"])
         a, b = (ctx.vector(spec[k], kpath + (k,)) for k in ("start", "end"))
         n = ctx.counts(spec, kpath, 1)[0]
         if a == b:
             raise ctx.error(kpath + ("end",), "a line needs two different end points")
         return Probe.line(name, m(a), m(b), n)
     if kind == "plane":
-        ctx.keys(spec, kpath, ("origin", "u", "v", "n"))
+        ctx.keys(spec, kpath, KEYS["probe.plane"], required=KEYS["probe.plane"])
         o, u, v = (ctx.vector(spec[k], kpath + (k,)) for k in ("origin", "u", "v"))
         nu, nv = ctx.counts(spec, kpath, 2)
         cross = np.linalg.norm(np.cross(u, v))
         if not cross > 1e-12 * np.linalg.norm(u) * np.linalg.norm(v):
             raise ctx.error(kpath + ("v",), "u and v must be non-zero and not parallel")
         return Probe.plane(name, m(o), m(u), m(v), nu, nv)
-    ctx.keys(spec, kpath, ("min", "max", "n"))
+    ctx.keys(spec, kpath, KEYS["probe.box"], required=KEYS["probe.box"])
     lo, hi = (ctx.vector(spec[k], kpath + (k,)) for k in ("min", "max"))
     n = ctx.counts(spec, kpath, 3)
     if not all(h > l for l, h in zip(lo, hi)):
@@ -376,9 +417,9 @@ def _check_count(ctx, path, n):
 
 def _solver(ctx, tab) -> SolverOptions:
     path = ("solver",)
-    ctx.keys(tab, path, (), ("method", "tolerance", "max_iterations"))
+    ctx.keys(tab, path, KEYS["solver"])
     d = SolverOptions()
-    method = ctx.string(tab, path, "method", choices=_SOLVER_METHODS, default=d.method)
+    method = ctx.string(tab, path, "method", choices=SOLVER_METHODS, default=d.method)
     tol = d.tolerance
     if "tolerance" in tab:
         tol = ctx.number(tab["tolerance"], path + ("tolerance",), positive=True)
@@ -391,7 +432,7 @@ def _solver(ctx, tab) -> SolverOptions:
 
 def _demag(ctx, tab, names) -> DemagRequest:
     path = ("demag",)
-    ctx.keys(tab, path, (), ("bodies", "fluxmetric"))
+    ctx.keys(tab, path, KEYS["demag"])
     chosen = tuple(names)
     if "bodies" in tab:
         bpath = path + ("bodies",)
@@ -403,12 +444,12 @@ def _demag(ctx, tab, names) -> DemagRequest:
                 raise ctx.error(bpath + (i,), f"unknown body {b!r}{_hint(b, names)}")
             if b in chosen[:i]:
                 raise ctx.error(bpath + (i,), f"body {b!r} is listed twice")
-    flux = ctx.string(tab, path, "fluxmetric", choices=_AXES, default=None)
+    flux = ctx.string(tab, path, "fluxmetric", choices=AXES, default=None)
     return DemagRequest(chosen, flux)
 
 
 def _expect(ctx, tab, path, bodies, probes, demag) -> Expectation:
-    ctx.keys(tab, path, ("quantity", "value"), ("rel_tol", "abs_tol"))
+    ctx.keys(tab, path, KEYS["expect"], required=("quantity", "value"))
     q = ctx.string(tab, path, "quantity")
     _check_quantity(ctx, q, path + ("quantity",), bodies, probes, demag)
     value = ctx.number(tab["value"], path + ("value",))
@@ -420,28 +461,32 @@ def _expect(ctx, tab, path, bodies, probes, demag) -> Expectation:
 
 
 def _check_quantity(ctx, q, path, bodies, probes, demag):
-    """Syntax of a dotted result path: root, an existing name, components."""
+    """A dotted result path (grammar in :func:`volmag.run.parse_quantity`) that
+    names an existing body, probe (point index in range) or demag request.
+    `probes` maps probe names to their numbers of points."""
     parts = q.split(".")
     if not all(_COMPONENT_RE.match(p) for p in parts):
         raise ctx.error(path, f"{q!r} is not a dotted path such as 'bodies.sample.mean_M.z'")
-    root = parts[0]
-    if root not in _EXPECT_ROOTS:
-        raise ctx.error(path, f"{q!r} must start with one of {', '.join(_EXPECT_ROOTS)}"
-                              f"{_hint(root, _EXPECT_ROOTS)}")
-    if root == "solver":
-        if len(parts) != 2 or parts[1] not in _SOLVER_QUANTITIES:
-            raise ctx.error(path, f"{q!r}: use solver.<{'|'.join(_SOLVER_QUANTITIES)}>"
-                                  f"{_hint(parts[-1], _SOLVER_QUANTITIES)}")
-        return
-    if len(parts) < 3:
-        raise ctx.error(path, f"{q!r} is incomplete: {root}.<name>.<quantity>[.<component>]")
-    if root == "demag" and demag is None:
+    roots = ("demag", "bodies", "solver", "probes")
+    if parts[0] not in roots:
+        raise ctx.error(path, f"{q!r} must start with one of {', '.join(roots)}{_hint(parts[0], roots)}")
+    if parts[0] == "demag" and demag is None:
         raise ctx.error(path, f"{q!r} needs a [demag] table")
-    name = parts[1]
+    try:
+        quantity = parse_quantity(q)
+    except ValueError as e:
+        raise ctx.error(path, str(e)) from None
+    if quantity.root == "solver":
+        return
     known, what = {"bodies": (bodies, "no body"), "probes": (probes, "no probe"),
-                   "demag": (demag and demag.bodies, "[demag] bodies has no")}[root]
-    if name not in known:
-        raise ctx.error(path, f"{what} {name!r}{_hint(name, known)}")
+                   "demag": (demag and demag.bodies, "[demag] bodies has no")}[quantity.root]
+    if quantity.name not in known:
+        raise ctx.error(path, f"{what} {quantity.name!r}{_hint(quantity.name, known)}")
+    if quantity.field == "fluxmetric" and demag.fluxmetric is None:
+        raise ctx.error(path, f"{q!r} needs fluxmetric = \"x\"|\"y\"|\"z\" in [demag]")
+    if quantity.index is not None and quantity.index >= probes[quantity.name]:
+        raise ctx.error(path, f"{q!r}: probe {quantity.name!r} has {probes[quantity.name]} points, "
+                              f"indices 0 to {probes[quantity.name] - 1}")
 
 
 # ---------------------------------------------------------------------------
@@ -472,8 +517,8 @@ class _Context:
     def error(self, path: tuple, message: str) -> CaseError:
         return CaseError(self.file, _format_path(path), self.line_of(path), message)
 
-    def keys(self, tab: dict, path, required=(), optional=()):
-        allowed = tuple(required) + tuple(optional)
+    def keys(self, tab: dict, path, allowed, required=()):
+        """Refuse keys of `tab` not in `allowed` and report missing `required` ones."""
         for k in tab:
             if k not in allowed:
                 raise self.error(path + (k,), f"unknown key{_hint(k, allowed, 'allowed here')}")

@@ -2,19 +2,25 @@
 
 Layout (format version 1):
   root attributes  volmag_version, format_version, case_sha256, title,
-                   length_unit, created (UTC, ISO 8601)
+                   length_unit, created (UTC, ISO 8601), converged,
+                   expect_passed, expect_total, and provenance_<item> for
+                   each item of :func:`volmag.run.provenance` (versions,
+                   BLAS, thread counts, mesh seed)
   /case            the case text, verbatim
+  /summary         the run summary as JSON text (what `volmag run --json` prints)
   /mesh            nodes (m), cells, body_id; attributes cell_type, body_names
                    hex meshes also cell_size (m), grid_index, grid_origin (m)
   /solution        M, H (A/m) and B (T) per element
   /demag/<body>    N (3x3), chi (3x3), apparent_susceptibility; attribute fluxmetric
-  /probes/<name>   points (m), H (A/m), B, B_applied (T)
+  /probes/<name>   points (m), H (A/m), B, B_applied (T); attributes kind, grid_shape
   /solver          attributes method, unknowns, iterations, residual, seconds,
-                   converged; dataset residual_history
+                   converged; datasets residual_history and, for nonlinear
+                   materials, newton_history (residual, step, GMRES its, dM)
 """
 from __future__ import annotations
 
 import datetime as _dt
+import json
 import os
 import tempfile
 from pathlib import Path
@@ -22,7 +28,16 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from . import __version__
+from .run import summary_json
+
 FORMAT_VERSION = 1
+_REQUIRED = ("case", "summary", "mesh", "solver")  # members every results file has
+
+
+class ResultsError(ValueError):
+    """A results file that cannot be read: missing, damaged, not written by
+    volmag, or of a newer format than this version reads."""
 
 
 def write_results(path, run, version: str) -> Path:
@@ -44,12 +59,17 @@ def write_results(path, run, version: str) -> Path:
 
 def _fill(f: h5py.File, run, version: str) -> None:
     case = run.case
+    summary = run.summary()
     f.attrs.update(volmag_version=version, format_version=FORMAT_VERSION, case_sha256=case.sha256,
                    title=case.title, length_unit=case.length_unit,
-                   created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"))
+                   created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+                   converged=bool(summary["converged"]),
+                   expect_passed=sum(bool(e["ok"]) for e in summary["expect"]),
+                   expect_total=len(summary["expect"]))
     for k, v in run.provenance.items():
         f.attrs[f"provenance_{k}"] = v
     f.create_dataset("case", data=case.text, dtype=h5py.string_dtype())
+    f.create_dataset("summary", data=summary_json(summary), dtype=h5py.string_dtype())
     mesh = run.model.mesh
     g = f.create_group("mesh")
     g.create_dataset("nodes", data=mesh.nodes)
@@ -71,6 +91,9 @@ def _fill(f: h5py.File, run, version: str) -> None:
     for k, v in run.solver_summary().items():
         s.attrs[k] = v
     s.create_dataset("residual_history", data=np.asarray(run.residual_history(), float))
+    if run.solution is not None and "newton_history" in run.solution.stats:
+        # one row per Newton step: residual, step length, GMRES iterations, relative change of M
+        s.create_dataset("newton_history", data=np.asarray(run.solution.stats["newton_history"], float))
     d = f.create_group("demag")
     for name, res in run.demag.items():
         b = d.create_group(name)
@@ -82,25 +105,43 @@ def _fill(f: h5py.File, run, version: str) -> None:
             b.attrs["fluxmetric"] = res.fluxmetric
             b.attrs["fluxmetric_axis"] = res.fluxmetric_axis
     p = f.create_group("probes")
+    kinds = {pr.name: pr for pr in case.probes}
     for name, pr in run.probes.items():
         g = p.create_group(name)
+        if name in kinds:
+            g.attrs.update(kind=kinds[name].kind, grid_shape=list(kinds[name].grid_shape))
         for k in ("points", "H", "B", "B_applied"):
             g.create_dataset(k, data=pr[k])
 
 
 def read_results(path) -> dict:
-    """Read a results file into a dict of numpy arrays and attributes.
-    Refuses files of a newer format and reports damaged files plainly."""
+    """Read a results file into a dict: "attrs" (root attributes), "case"
+    (text), "summary" (the run summary, a dict) and one dict per group with
+    its arrays and an "attrs" dict. Raises :class:`ResultsError` for a file
+    that is missing, damaged (truncated, unreadable data), not a volmag
+    results file, or of a newer format version; nothing is returned half-read."""
     path = Path(path)
+    if not path.is_file():
+        raise ResultsError(f"{path}: no such results file")
     try:
         with h5py.File(path, "r") as f:
-            version = int(f.attrs.get("format_version", -1))
+            if "format_version" not in f.attrs:
+                raise ResultsError(f"{path}: not a volmag results file (no format_version attribute)")
+            version = int(f.attrs["format_version"])
             if version > FORMAT_VERSION:
-                raise ValueError(f"{path}: results format version {version} is newer than this volmag "
-                                 f"reads ({FORMAT_VERSION}); upgrade volmag")
-            return _to_dict(f)
-    except OSError as e:
-        raise ValueError(f"{path}: not a readable volmag results file ({e})") from None
+                raise ResultsError(f"{path}: results format version {version} is newer than this volmag "
+                                   f"{__version__} reads (version {FORMAT_VERSION}); "
+                                   "upgrade volmag to read it")
+            missing = [k for k in _REQUIRED if k not in f]
+            if missing:
+                raise ResultsError(f"{path}: incomplete results file (no {', '.join(missing)})")
+            out = _to_dict(f)
+        out["summary"] = json.loads(out["summary"])
+    except ResultsError:
+        raise
+    except (OSError, RuntimeError, KeyError, ValueError) as e:  # h5py's ways of meeting damage
+        raise ResultsError(f"{path}: damaged or unreadable results file ({e})") from None
+    return out
 
 
 def _to_dict(g) -> dict:
