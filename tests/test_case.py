@@ -270,6 +270,34 @@ MALFORMED = [
         quantity = "solver.iterations"
         value = 10
         """), "expect[0].rel_tol", "rel_tol or abs_tol"),
+    ("expect on a result a body does not have", case(HEAD, BODY, SOURCE, """\
+        [[expect]]
+        quantity = "bodies.a.weight.z"  # <-
+        value = 1
+        rel_tol = 0.01
+        """), "expect[0].quantity", "one of volume, mean_M, moment"),
+    ("expect without a component", case(HEAD, BODY, SOURCE, """\
+        [[expect]]
+        quantity = "bodies.a.moment"  # <-
+        value = 1
+        rel_tol = 0.01
+        """), "expect[0].quantity", "needs a component (x, y or z)"),
+    ("expect on a probe point out of range", case(HEAD, BODY, SOURCE, """\
+        [[probe]]
+        name = "p"
+        points = [[0, 0, 5], [0, 0, 6]]
+        [[expect]]
+        quantity = "probes.p.dB.z[2]"  # <-
+        value = 1e-6
+        abs_tol = 1e-7
+        """), "expect[0].quantity", "has 2 points"),
+    ("expect on a fluxmetric factor not asked for", case(HEAD, BODY, """\
+        [demag]
+        [[expect]]
+        quantity = "demag.a.fluxmetric"  # <-
+        value = 0.3
+        rel_tol = 0.01
+        """), "expect[0].quantity", "needs fluxmetric"),
     ("solver tolerance too loose", case(HEAD, BODY, SOURCE, """\
         [solver]
         method = "dense"

@@ -1,21 +1,26 @@
-"""Command line: `volmag run CASE [--out FILE.h5] [--json] [--quiet] [--debug]`.
+"""Command line: `volmag run CASE [--out FILE.h5] [--json] [--quiet] [--debug]`,
+`volmag check DIR`, `volmag show FILE.h5`,
+`volmag view FILE.h5`, `volmag report FILE.h5`, `volmag export FILE.h5 --vtu OUT`.
 
 Exit status: 0 converged and every expectation holds; 1 an expectation failed
 or the solve did not converge; 2 bad input (case file, mesh file, a model too
-large for the chosen method).
+large for the chosen method, an unreadable results file); 130 interrupted
+(Ctrl-C or SIGTERM) -- no results file is changed then.
 """
 from __future__ import annotations
 
 import argparse
 import json
+import signal
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
 
 from . import __version__
 
-EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
 def main(argv=None) -> int:
@@ -27,22 +32,35 @@ def main(argv=None) -> int:
     run.add_argument("--out", type=Path, help="results file (HDF5); default: CASE name with .h5, here")
     run.add_argument("--json", action="store_true", help="print one JSON summary object on stdout")
     run.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    run.add_argument("--progress", action="store_true", help="progress on stderr even when it is not a terminal")
     run.add_argument("--debug", action="store_true", help="show tracebacks")
+    run.set_defaults(func=cmd_run)
+    add_check_parser(sub)
+    add_show_parser(sub)
+    add_view_parsers(sub)
     args = parser.parse_args(argv)
+    # SIGTERM (a CI time-out) unwinds like Ctrl-C, so temporary files are removed.
+    previous = signal.signal(signal.SIGTERM, _interrupt)
     try:
-        return cmd_run(args)
+        return args.func(args)
     except KeyboardInterrupt:
         print("volmag: interrupted; no results file was changed", file=sys.stderr)
-        return 130
+        return EXIT_INTERRUPTED
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def _interrupt(signum, frame):
+    raise KeyboardInterrupt
 
 
 def cmd_run(args) -> int:
     from .case import CaseError, load_case
     from .progress import Progress
     from .results import write_results
-    from .run import run_case
+    from .run import run_case, summary_json
     from .solve import SolverError
-    progress = Progress(False if args.quiet else None)
+    progress = Progress(True if args.progress else False if args.quiet else None)
     try:
         case = load_case(args.case)
         run = run_case(case, progress)
@@ -52,38 +70,42 @@ def cmd_run(args) -> int:
         print(f"volmag: error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
     out = args.out or Path(args.case.stem + ".h5")
-    write_results(out, run, __version__)
+    try:
+        write_results(out, run, __version__)
+    except OSError as e:
+        if args.debug:
+            raise
+        print(f"volmag: error: cannot write the results file {out} ({e.strerror or e})", file=sys.stderr)
+        return EXIT_BAD_INPUT
     progress(f"results written to {out}")
     summary = run.summary()
     if args.json:
-        print(json.dumps(summary, default=_plain))
+        print(summary_json(summary))
     else:
         print(format_summary(summary))
-    if not summary["converged"] or not all(e["ok"] for e in summary["expect"]):
-        return EXIT_FAILED
-    return EXIT_OK
+    return EXIT_OK if _passed(summary) else EXIT_FAILED
 
 
-def _plain(x):
-    if isinstance(x, np.generic):
-        return x.item()
-    if isinstance(x, np.ndarray):
-        return x.tolist()
-    raise TypeError(type(x))
+def _passed(summary: dict) -> bool:
+    """Converged, and every expectation holds."""
+    return bool(summary["converged"]) and all(e["ok"] for e in summary["expect"])
 
 
 def format_summary(s: dict) -> str:
     """Human-readable run summary."""
     lines = [s["title"], ""]
     sv = s["solver"]
+    solved = sv["unknowns"] > 0  # 0: nothing to solve for beyond the demagnetising tensors
     lines.append(f"solver: {sv['method']}, {sv['unknowns']} unknowns, {sv['iterations']} iterations, "
                  f"residual {sv['residual']:.2e}, {sv['seconds']:.1f} s, "
-                 f"{'converged' if s['converged'] else 'NOT CONVERGED'}")
+                 f"{'converged' if s['converged'] else 'NOT CONVERGED'}" if solved else
+                 "solver: no applied-field solve (no source, or no magnetic body)")
     for m in s["mesh"]:
         lines.append(f"mesh: {m['summary']}")
     for name, b in s["bodies"].items():
-        lines.append(f"body {name}: volume {b['volume']:.6g} m^3, mean M "
-                     f"[{', '.join(f'{v:.6g}' for v in b['mean_M'])}] A/m")
+        lines.append(f"body {name}: volume {b['volume']:.6g} m^3" + (
+            f", mean M [{', '.join(f'{v:.6g}' for v in b['mean_M'])}] A/m, moment "
+            f"[{', '.join(f'{v:.6g}' for v in b['moment'])}] A m^2" if solved else ""))
     for name, d in s["demag"].items():
         lines.append(f"demagnetising tensor of {name} (chi = {d['chi']}):")
         lines += ["  " + "  ".join(f"{v:+.6f}" for v in row) for row in d["N"]]
@@ -91,13 +113,264 @@ def format_summary(s: dict) -> str:
             lines.append(f"  fluxmetric factor along {d['fluxmetric']['axis']}: {d['fluxmetric']['N']:.6f}")
     for name, p in s["probes"].items():
         lines.append(f"probe {name}: {p['points']} points, mean B "
-                     f"[{', '.join(f'{v:.6g}' for v in p['B'])}] T")
+                     f"[{', '.join(f'{v:.6g}' for v in p['B'])}] T, of which from the bodies "
+                     f"[{', '.join(f'{v:.6g}' for v in p.get('dB', [np.nan] * 3))}] T")
     if s["expect"]:
-        lines.append("expectations:")
-        for e in s["expect"]:
-            got = "error: " + e["error"] if e.get("error") else f"{e['got']:.6g}"
-            lines.append(f"  {'pass' if e['ok'] else 'FAIL'}  {e['quantity']} = {got} (expected {e['value']:.6g})")
+        lines += ["", format_expectations(s["expect"])]
     return "\n".join(lines)
+
+
+def format_expectations(expect: list) -> str:
+    """Pass/fail table of expectation outcomes (see :func:`volmag.run.check_expectations`)."""
+    rows = [("", "quantity", "expected", "got", "tolerance", "line")]
+    for e in expect:
+        got = "-" if e.get("got") is None else f"{e['got']:.6g}"
+        tol = f"{e['tolerance']:.3g}" if "tolerance" in e else "-"
+        rows.append(("pass" if e["ok"] else "FAIL", e["quantity"], f"{e['value']:.6g}", got, tol,
+                     str(e.get("line") or "")))
+    widths = [max(len(r[k]) for r in rows) for k in range(len(rows[0]))]
+    passed = sum(bool(e["ok"]) for e in expect)
+    lines = [f"expectations: {passed} of {len(expect)} pass"]
+    for i, r in enumerate(rows):
+        lines.append("  " + "  ".join(c.ljust(w) if k < 2 else c.rjust(w)
+                                      for k, (c, w) in enumerate(zip(r, widths))).rstrip())
+        if i and expect[i - 1].get("error"):
+            lines.append(f"        error: {expect[i - 1]['error']}")
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------
+# volmag check DIR: a folder of case files as a regression suite
+
+def add_check_parser(sub) -> None:
+    p = sub.add_parser("check", help="run every case file (*.toml) in a folder and report each outcome")
+    p.add_argument("folder", type=Path)
+    p.add_argument("--out", type=Path, metavar="DIR", help="also write each case's results file into DIR")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout instead of the lines")
+    p.add_argument("--progress", action="store_true", help="progress of each run on stderr")
+    p.add_argument("--debug", action="store_true", help="stop at the first error and show its traceback")
+    p.set_defaults(func=cmd_check)
+
+
+def cmd_check(args) -> int:
+    """Run each case of the folder in name order; one line per case (name,
+    outcome pass | FAIL | ERROR, expectations passed/total, seconds), the
+    failing expectations and errors below it. Exit 0 when every case passes,
+    2 when one could not run (ERROR), else 1."""
+    folder = args.folder
+    files = sorted(folder.glob("*.toml")) if folder.is_dir() else []
+    if not files:
+        why = "is not a folder" if not folder.is_dir() else "holds no case files (*.toml)"
+        print(f"volmag: error: {folder} {why}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    width = max(len(f.name) for f in files)
+    t0 = time.perf_counter()
+    results = []
+    for f in files:
+        r = check_case(f, args)
+        results.append(r)
+        if not args.json:
+            print(_check_line(r, width), flush=True)
+    counts = {k: sum(r["outcome"] == k for r in results) for k in ("pass", "FAIL", "ERROR")}
+    status = EXIT_BAD_INPUT if counts["ERROR"] else EXIT_FAILED if counts["FAIL"] else EXIT_OK
+    if args.json:
+        print(json.dumps({"folder": str(folder), "ok": status == EXIT_OK, **counts, "cases": results}))
+    else:
+        print(f"{len(results)} cases: {counts['pass']} pass, {counts['FAIL']} FAIL, {counts['ERROR']} ERROR "
+              f"in {time.perf_counter() - t0:.1f} s")
+    return status
+
+
+def check_case(path: Path, args) -> dict:
+    """Run one case file; its outcome as a dict (case, title, outcome,
+    passed, total, seconds, expect, error)."""
+    from .case import CaseError, load_case
+    from .progress import Progress
+    from .results import write_results
+    from .run import run_case
+    from .solve import SolverError
+    t0 = time.perf_counter()
+    row = {"case": path.name, "title": None, "outcome": "ERROR", "passed": 0, "total": 0, "expect": []}
+    try:
+        case = load_case(path)
+        row["title"], row["total"] = case.title, len(case.expects)
+        run = run_case(case, Progress(bool(args.progress)))
+        if args.out is not None:
+            write_results(args.out / (path.stem + ".h5"), run, __version__)
+        summary = run.summary()
+        row.update(expect=summary["expect"], passed=sum(bool(e["ok"]) for e in summary["expect"]),
+                   outcome="pass" if _passed(summary) else "FAIL")
+        if not summary["converged"]:
+            row["error"] = "the solve did not converge"
+    except (CaseError, SolverError, ValueError, FileNotFoundError, OSError) as e:
+        if args.debug:
+            raise
+        row["error"] = str(e)
+    except Exception as e:  # one broken case must not hide the others' outcomes
+        if args.debug:
+            raise
+        row["error"] = f"internal error: {type(e).__name__}: {e} (rerun with --debug for the traceback)"
+    row["seconds"] = time.perf_counter() - t0
+    return row
+
+
+def _check_line(r: dict, width: int) -> str:
+    line = (f"{r['case']:<{width}}  {r['outcome']:<5}  {r['passed']:>3}/{r['total']:<3} expectations  "
+            f"{r['seconds']:6.1f} s")
+    details = [f"    FAIL {e['quantity']}: got {'-' if e['got'] is None else format(e['got'], '.6g')}, "
+               f"expected {e['value']:.6g} +- {e['tolerance']:.3g}"
+               + (f" ({e['error']})" if e.get("error") else "")
+               for e in r["expect"] if not e["ok"]]
+    if r.get("error"):
+        details.append(f"    {r['error']}")
+    return "\n".join([line] + details)
+
+
+# ---------------------------------------------------------------------------
+# volmag show FILE.h5: what a results file holds
+
+def add_show_parser(sub) -> None:
+    p = sub.add_parser("show", help="print the summary of a results file")
+    p.add_argument("results", type=Path)
+    p.add_argument("--json", action="store_true", help="print the stored JSON summary")
+    p.set_defaults(func=cmd_show)
+
+
+def cmd_show(args) -> int:
+    from .results import ResultsError, read_results
+    from .run import summary_json
+    try:
+        res = read_results(args.results)
+    except ResultsError as e:
+        print(f"volmag: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    if args.json:
+        print(summary_json(res["summary"]))
+    else:
+        print(format_results(res, args.results))
+    return EXIT_OK
+
+
+def format_results(res: dict, path) -> str:
+    """Human-readable account of a results file (dict of
+    :func:`volmag.results.read_results`): provenance, then the run summary."""
+    a = res["attrs"]
+    prov = res["summary"].get("provenance") or {k[len("provenance_"):]: v for k, v in a.items()
+                                                if k.startswith("provenance_")}
+    versions = ", ".join(f"{k} {prov[k]}" for k in prov
+                         if k not in ("platform", "blas", "blas_threads", "numba_threads", "mesh_seed",
+                                      "mesh_threads"))
+    lines = [f"results file {path} (format version {a['format_version']}, written {a['created']} "
+             f"by volmag {a['volmag_version']})",
+             f"case sha256 {a['case_sha256']} ({len(str(res['case']).splitlines())} lines stored in /case)",
+             f"versions: {versions}",
+             f"BLAS: {prov.get('blas', '?')}; threads: BLAS {prov.get('blas_threads', '?')}, "
+             f"numba {prov.get('numba_threads', '?')}; mesh seed {prov.get('mesh_seed', '?')} "
+             f"({prov.get('mesh_threads', '?')} mesher thread); {prov.get('platform', '?')}",
+             ""]
+    return "\n".join(lines) + format_summary(res["summary"])
+
+
+# ---------------------------------------------------------------------------
+# volmag view / report / export: pictures, an HTML report and VTK files of a results file
+
+def add_view_parsers(sub) -> None:
+    from .views import DEFAULT_TOLERANCE_PPM, VIEWS
+    v = sub.add_parser("view", help="draw a results file: a window where a display exists, else a PNG")
+    v.add_argument("results", type=Path)
+    v.add_argument("--what", choices=VIEWS, default="surface",
+                   help="surface: bodies coloured by |M|; arrows: magnetisation; slice: 3D plane of the field; "
+                        "map: the same plane as a contour map; probes: B along probe lines; "
+                        "residual: solver history (default: surface)")
+    v.add_argument("--out", type=Path, help="write this PNG instead of opening a window")
+    v.add_argument("--size", type=_size, default=(1200, 900), metavar="W,H", help="pixels (default 1200,900)")
+    v.add_argument("--quantity", choices=("B", "dB", "ppm"), default="ppm",
+                   help="slice and map: |B|, |B - B_applied| or distortion in ppm (default ppm)")
+    v.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE_PPM, metavar="PPM",
+                   help=f"slice and map: distortion tolerance line, ppm (default {DEFAULT_TOLERANCE_PPM:g})")
+    v.add_argument("--samples", type=int, metavar="N",
+                   help="slice and map: samples along the plane's longer side (default: by mesh size, 30 to 80)")
+    v.add_argument("--component", choices=("magnitude", "x", "y", "z"), default="magnitude",
+                   help="surface: which part of M colours it (default magnitude)")
+    v.add_argument("--debug", action="store_true", help="show tracebacks")
+    v.set_defaults(func=cmd_view)
+    r = sub.add_parser("report", help="write a self-contained HTML report of a results file")
+    r.add_argument("results", type=Path)
+    r.add_argument("--out", type=Path, help="HTML file (default: RESULTS name with .html, here)")
+    r.add_argument("--quantity", choices=("B", "dB", "ppm"), default="ppm", help="field map quantity (default ppm)")
+    r.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE_PPM, metavar="PPM",
+                   help=f"distortion tolerance line on the map, ppm (default {DEFAULT_TOLERANCE_PPM:g})")
+    r.add_argument("--samples", type=int, metavar="N",
+                   help="field map: samples along the plane's longer side (default: by mesh size, 30 to 80)")
+    r.add_argument("--debug", action="store_true", help="show tracebacks")
+    r.set_defaults(func=cmd_report)
+    e = sub.add_parser("export", help="write the elements and their M, H, B as a VTK file")
+    e.add_argument("results", type=Path)
+    e.add_argument("--vtu", type=Path, required=True, help="VTK unstructured grid file to write (.vtu)")
+    e.add_argument("--debug", action="store_true", help="show tracebacks")
+    e.set_defaults(func=cmd_export)
+
+
+def _size(text: str) -> tuple[int, int]:
+    try:
+        w, h = (int(x) for x in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"size must be W,H in pixels, e.g. 1200,900 (got {text!r})") from None
+    if not (16 <= w <= 8000 and 16 <= h <= 8000):
+        raise argparse.ArgumentTypeError(f"size {w},{h}: each side must be 16 to 8000 pixels")
+    return w, h
+
+
+def _with_results(args, action) -> int:
+    """Read the results file and run `action(res)`; plain messages, exit 2, on bad input."""
+    from .results import ResultsError, read_results
+    try:
+        return action(read_results(args.results))
+    except (ResultsError, ValueError, OSError) as e:
+        if args.debug:
+            raise
+        print(f"volmag: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+def cmd_view(args) -> int:
+    from .views import has_display, render
+
+    def draw(res):
+        out = args.out
+        if out is None and not has_display():
+            out = Path(f"{args.results.stem}_{args.what}.png")
+        field = dict(quantity=args.quantity, tolerance_ppm=args.tolerance)
+        if args.samples and args.what in ("slice", "map"):
+            from .slices import default_plane
+            field["plane"] = default_plane(res, n=args.samples)
+        options = {"surface": dict(component=args.component), "slice": field, "map": field}.get(args.what, {})
+        written = render(res, args.what, out, args.size, **options)
+        if written is not None:
+            print(f"volmag: {args.what} view written to {written}", file=sys.stderr)
+        return EXIT_OK
+    return _with_results(args, draw)
+
+
+def cmd_report(args) -> int:
+    from .report import write_report
+
+    def report(res):
+        out = write_report(res, args.out or Path(args.results.stem + ".html"), quantity=args.quantity,
+                           tolerance_ppm=args.tolerance, samples=args.samples)
+        print(f"volmag: report written to {out}", file=sys.stderr)
+        return EXIT_OK
+    return _with_results(args, report)
+
+
+def cmd_export(args) -> int:
+    from .export import write_vtu
+
+    def export(res):
+        out = write_vtu(res, args.vtu)
+        print(f"volmag: VTK file written to {out}", file=sys.stderr)
+        return EXIT_OK
+    return _with_results(args, export)
 
 
 if __name__ == "__main__":

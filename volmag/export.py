@@ -3,7 +3,6 @@ with M, H (A/m), B (T) and body_id as cell data, for any VTK-based viewer."""
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -38,8 +37,7 @@ def write_vtu(res: dict, out) -> Path:
     grid.field_data["body_names"] = [str(n) for n in res["mesh"]["attrs"].get("body_names", [])] or [""]
     for k in ("title", "case_sha256", "volmag_version"):
         grid.field_data[k] = [str(attrs.get(k, ""))]
-    fd, tmp = tempfile.mkstemp(prefix=f".{out.stem}.", suffix=".vtu", dir=out.parent)
-    os.close(fd)
+    tmp = out.with_name(f".{out.stem}.part.vtu")  # the writer is chosen by the suffix
     try:
         grid.save(tmp, binary=True)
         os.replace(tmp, out)

@@ -99,18 +99,19 @@ def _potential_rows(points, mesh, indptr, indices, data, out):
 
     Rows are independent (each writes its own row of out); they run in
     parallel blocks, each with its own scratch.  Per row, every face's I_f
-    comes from kernels._mesh_potentials_at, which shares the edge logarithms
+    comes from kernels.mesh_potentials_at, which shares the edge logarithms
     and vertex distances between the faces around them (several times fewer
     transcendental calls than one triangle_potential per face, same values
     to rounding)."""
     inv4pi = 1.0 / (4.0 * np.pi)
     n, nf = points.shape[0], mesh.faces.shape[0]
     active = indptr[1:] > indptr[:-1]
+    reach2 = kernels.edge_reach2(mesh, active)
     block = kernels.MESH_ROW_BLOCK
     for blk in prange((n + block - 1) // block):
-        dist, L, stamp, s = kernels._mesh_scratch(mesh)
+        dist, L, s = kernels.mesh_scratch(mesh)
         for i in range(blk * block, min(n, (blk + 1) * block)):
-            kernels._mesh_potentials_at(points[i], mesh, active, dist, L, stamp, i, s)
+            kernels.mesh_potentials_at(points[i], mesh, active, reach2, dist, L, s)
             for f in range(nf):
                 sf = inv4pi * s[f]
                 for k in range(indptr[f], indptr[f + 1]):

@@ -138,15 +138,19 @@ def _uniform_demag(model) -> np.ndarray:
     # N[:, j] = (1/V) surface-integral of phi_j n dS (Gauss' theorem on <H>), with
     # phi_j the exact potential of the boundary charges n_j, integrated by a
     # degree-5 rule on each boundary triangle: exact N of the meshed polyhedron.
+    # The boundary triangles share edges: evaluate the potentials with the
+    # shared-edge kernel, on the boundary nodes alone.
     topo = operators.tet_topology(mesh.nodes, mesh.cells)
     boundary = topo.neighbour < 0
-    tri = mesh.nodes[topo.faces[boundary]]
+    used, local = np.unique(topo.faces[boundary], return_inverse=True)
+    surface = kernels.triangle_mesh(mesh.nodes[used], local.reshape(-1, 3))
+    tri = surface.nodes[surface.faces]
     normals = topo.normals[boundary]
     area = 0.5 * np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
     qp = np.einsum("qk,fkd->fqd", kernels.TRI_RULE_POINTS, tri).reshape(-1, 3)
     qw = (area[:, None] * kernels.TRI_RULE_WEIGHTS[None, :]).ravel()
     qn = np.repeat(normals, len(kernels.TRI_RULE_WEIGHTS), axis=0)
-    phi = kernels.face_potentials_at_points(qp, tri, np.ascontiguousarray(normals))   # (q, 3)
+    phi = kernels.mesh_potentials_at_points(qp, surface, np.ascontiguousarray(normals))   # (q, 3)
     return (qn * qw[:, None]).T @ phi / vol.sum()
 
 

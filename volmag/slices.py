@@ -12,7 +12,6 @@ from pathlib import Path
 
 import numpy as np
 
-from .meshing import Mesh
 from .units import MU0, length_scale
 
 QUANTITIES = ("B", "dB", "ppm")
@@ -83,10 +82,11 @@ def results_case(res: dict, base_dir=None):
         raise ValueError(f"cannot rebuild the model from the stored case text: {e}") from None
 
 
-def results_mesh(res: dict) -> Mesh:
+def results_mesh(res: dict):
     """The :class:`volmag.meshing.Mesh` of a results dict.  Hex grids are read
     from /mesh/cell_size, grid_index, grid_origin, or recovered from the nodes
     of files written without them."""
+    from .meshing import Mesh
     m = res["mesh"]
     kind = str(m["attrs"]["cell_type"])
     nodes, cells = np.asarray(m["nodes"], float), np.asarray(m["cells"], np.int64)
@@ -103,7 +103,7 @@ def results_mesh(res: dict) -> Mesh:
     return Mesh(nodes, cells, kind, m["body_id"], **grid)
 
 
-def results_solution(res: dict, case=None, mesh: Mesh | None = None):
+def results_solution(res: dict, case=None, mesh=None):
     """A :class:`volmag.solve.Solution` rebuilt from a results dict (M and H
     per element as stored; M = 0 when the file holds no solution), so that
     fields at points come from the same code as during the run."""
@@ -135,13 +135,14 @@ def plane_fields(res: dict, plane: Plane, case=None) -> PlaneFields:
     return PlaneFields(plane, B.reshape(shape + (3,)), Ba.reshape(shape + (3,)), inside.reshape(shape))
 
 
-def default_plane(res: dict, case=None, n: int = 80) -> Plane:
+def default_plane(res: dict, case=None, n: int | None = None) -> Plane:
     """The first plane probe of the case, else the plane through the model's
     centre that contains the applied field's main axis and the longest other
     extent, reaching half the model size beyond it on every side; about `n`
-    samples along the longer side, square cells."""
+    samples along the longer side, square cells (default: :func:`sampling`)."""
     from .sources import total_source_field
     case = case or results_case(res)
+    n = n or sampling(res)
     for p in case.probes:
         if p.kind == "plane":
             s = p.spec
@@ -163,6 +164,15 @@ def default_plane(res: dict, case=None, n: int = 80) -> Plane:
     unit = str(res["attrs"].get("length_unit", "m"))
     at = centre[normal] / length_scale(unit)
     return _sampled(origin, u, v, n, f"plane {'xyz'[normal]} = {at:.4g} {display_unit(unit)}")
+
+
+def sampling(res: dict, budget: float = 1e7) -> int:
+    """Samples along the longer side of a default plane: 80, fewer for large
+    meshes so that samples x charged faces stays near `budget` (each pair is
+    one closed-form triangle integral), never below 30."""
+    cells = len(res["mesh"]["cells"])
+    faces = cells * (2 if str(res["mesh"]["attrs"]["cell_type"]) == "tet" else 12)
+    return int(np.clip(np.sqrt(1.6 * budget / max(faces, 1)), 30, 80))
 
 
 def display_unit(unit: str) -> str:
