@@ -228,7 +228,7 @@ def _segment_field(p, a, b) -> np.ndarray:
 
 # ---------------------------------------------------------------- winding cross-sections
 _PMAX = 12       # largest Gauss-Legendre order per direction before a panel is split
-_SAFETY = 10.0   # constant of the a-priori error estimate (calibrated in the tests)
+_SAFETY = 100.0  # constant of the a-priori error estimate (calibrated in the tests)
 _DROP = 0.05     # panels smaller than _DROP * rel_tol * (winding size) around the point are neglected
 _CHUNK = 1 << 18  # filament evaluations per vectorised call
 
@@ -304,7 +304,7 @@ def _bisect(i, cr, ch, hr, hh, split_r, split_z):
 
 def _accumulate(out, kernel, i, cr, ch, hr, hh, pr, pz, HR, HH):
     """Add the tensor Gauss-Legendre sums of the given panels to out[i]."""
-    frac = (hr / HR if HR > 0 else 1.0) * (hh / HH if HH > 0 else 1.0)
+    frac = (hr / HR if HR > 0 else np.ones_like(hr)) * (hh / HH if HH > 0 else 1.0)
     key = pr * 64 + pz
     for k in np.unique(key):
         sel = np.flatnonzero(key == k)
