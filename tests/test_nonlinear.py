@@ -124,3 +124,30 @@ def test_units_row_accepted(tmp_path):
     assert curve.flux_density(np.array([200.0]))[0] == pytest.approx(0.8)
     # beyond the table dB/dH = mu0 (saturation)
     assert curve.flux_density(np.array([2000.0]))[0] == pytest.approx(1.2 + vm.MU0 * 1000)
+
+
+def test_knee_warning_when_opposing_field_exceeds_knee():
+    """A magnet sphere in an opposing field H0: H_in = H0 - M/3 (uniform), so a
+    knee below |H_in| must be reported (design rule, common practice)."""
+    from volmag.case import parse_case
+    from volmag.run import run_case
+    text = """
+title = "magnet in opposing field"
+[[material]]
+name = "grade"
+remanence = [0.0, 0.0, 1.2]
+susceptibility = 0.05
+knee_field = 5e5
+[[body]]
+name = "m"
+material = "grade"
+shape = {type = "sphere", radius = 0.01}
+mesh = {element = "tet", size = 0.006}
+[[source]]
+type = "uniform"
+H = [0.0, 0.0, %g]
+"""
+    quiet = run_case(parse_case(text % -1e5)).summary()
+    assert quiet["warnings"] == []                    # H_in = -1e5 - 3.2e5 = -4.2e5: above the knee
+    loud = run_case(parse_case(text % -3e5)).summary()
+    assert len(loud["warnings"]) == 1 and "knee" in loud["warnings"][0]   # H_in = -6.2e5

@@ -105,7 +105,8 @@ def format_summary(s: dict) -> str:
     for name, b in s["bodies"].items():
         lines.append(f"body {name}: volume {b['volume']:.6g} m^3" + (
             f", mean M [{', '.join(f'{v:.6g}' for v in b['mean_M'])}] A/m, moment "
-            f"[{', '.join(f'{v:.6g}' for v in b['moment'])}] A m^2" if solved else ""))
+            f"[{', '.join(f'{v:.6g}' for v in b['moment'])}] A m^2, max |B| {b['max_abs_B']:.3g} T"
+            if solved else ""))
     for name, d in s["demag"].items():
         lines.append(f"demagnetising tensor of {name} (chi = {d['chi']}):")
         lines += ["  " + "  ".join(f"{v:+.6f}" for v in row) for row in d["N"]]
@@ -115,6 +116,7 @@ def format_summary(s: dict) -> str:
         lines.append(f"probe {name}: {p['points']} points, mean B "
                      f"[{', '.join(f'{v:.6g}' for v in p['B'])}] T, of which from the bodies "
                      f"[{', '.join(f'{v:.6g}' for v in p.get('dB', [np.nan] * 3))}] T")
+    lines += [f"WARNING: {w}" for w in s.get("warnings", [])]
     if s["expect"]:
         lines += ["", format_expectations(s["expect"])]
     return "\n".join(lines)

@@ -39,7 +39,7 @@ _AXES = {"x": 0, "y": 1, "z": 2}
 SOLVER_QUANTITIES = ("iterations", "residual", "unknowns", "seconds", "converged")
 #: Results per named body or probe: field -> (number of component letters, SI unit).
 QUANTITY_FIELDS = {
-    "bodies": {"volume": (0, "m^3"), "mean_M": (1, "A/m"), "moment": (1, "A m^2")},
+    "bodies": {"volume": (0, "m^3"), "mean_M": (1, "A/m"), "moment": (1, "A m^2"), "max_abs_B": (0, "T")},
     "demag": {"N": (2, "1"), "chi": (2, "1"), "apparent_susceptibility": (2, "1"), "fluxmetric": (0, "1")},
     "probes": {"H": (1, "A/m"), "B": (1, "T"), "B_applied": (1, "T"), "dB": (1, "T"), "max_abs_B": (0, "T")},
 }
@@ -83,6 +83,9 @@ class Run:
             else:
                 mean_M = moment = np.zeros(3)
             bodies[b.name] = {"volume": vol, "mean_M": mean_M.tolist(), "moment": moment.tolist()}
+            if self.solution is not None:
+                B = np.linalg.norm(self.solution.B[self.model.mesh.body_id == i], axis=1)
+                bodies[b.name]["max_abs_B"] = float(B.max())
         demag = {}
         for name, d in self.demag.items():
             entry = {"N": d.N.tolist(), "chi": _scalar_or_tensor(d.chi)}
@@ -98,7 +101,25 @@ class Run:
         return {"title": self.case.title, "case_sha256": self.case.sha256, "converged": self.converged,
                 "solver": self.solver_summary(),
                 "mesh": [dict(s.as_dict(), summary=s.summary()) for s in self.model.mesh_stats], "bodies": bodies,
-                "demag": demag, "probes": probes, "expect": self.expect, "provenance": self.provenance}
+                "demag": demag, "probes": probes, "expect": self.expect, "warnings": self.warnings(),
+                "provenance": self.provenance}
+
+    def warnings(self) -> list[str]:
+        """Plain-language warnings about the solved state (magnets past their knee)."""
+        out = []
+        if self.solution is None:
+            return out
+        for i, b in enumerate(self.model.bodies):
+            if getattr(b.material, "knee_field", None) is None:
+                continue
+            own = self.model.mesh.body_id == i
+            bad = b.material.knee_violations(self.solution.H[own], b.placement.rotation_matrix())
+            if bad.any():
+                share = self.model.mesh.volumes()[own][bad].sum() / self.model.mesh.volumes()[own].sum()
+                out.append(f"body {b.name}: the field opposing the remanence exceeds the knee field "
+                           f"({b.material.knee_field:g} A/m) in {100 * share:.1f} % of its volume; "
+                           "irreversible demagnetisation is likely there")
+        return out
 
 
 def probe_values(p: dict) -> dict:
@@ -274,7 +295,8 @@ def run_case(case, progress: Progress = QUIET) -> Run:
     with _python_signal_handlers():
         model = Model.build(case.bodies, progress)
     solution = None
-    if case.sources and any(b.material.is_magnetic for b in case.bodies):
+    has_magnets = any(np.any(b.material.remanence_vector()) for b in case.bodies)
+    if (case.sources or has_magnets) and any(b.material.is_magnetic for b in case.bodies):
         progress(f"solving: {model.mesh.n_cells} elements")
         solution = solve(model, case.sources, case.solver, progress)
     demag = {}
