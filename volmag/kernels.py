@@ -723,3 +723,21 @@ def mesh_potentials_at_points(points, mesh, sigmas):
                 for j in range(k):
                     phi[i, j] += sigmas[f, j] * sf
     return phi
+
+
+@njit(parallel=True, cache=True)
+def mesh_single_layer_matrix(points, mesh):
+    """S (n, nf) with S[i, f] = I_f(points[i]) / 4pi, m, for every face of the
+    TriangleMesh (the dense single-layer operator, for nonlinear solves that
+    re-use it at every Newton step)."""
+    n, nf = points.shape[0], mesh.faces.shape[0]
+    active = np.ones(nf, dtype=np.bool_)
+    reach2 = edge_reach2(mesh, active)
+    S = np.empty((n, nf))
+    for blk in prange((n + MESH_ROW_BLOCK - 1) // MESH_ROW_BLOCK):
+        dist, L, s = mesh_scratch(mesh)
+        for i in range(blk * MESH_ROW_BLOCK, min(n, (blk + 1) * MESH_ROW_BLOCK)):
+            mesh_potentials_at(points[i], mesh, active, reach2, dist, L, s)
+            for f in range(nf):
+                S[i, f] = s[f] * INV_4PI
+    return S

@@ -22,21 +22,12 @@ import time
 
 import numpy as np
 import scipy.linalg as sla
-from numba import njit, prange
 
 from . import kernels, operators
 from .krylov import gmres
 from .progress import QUIET
 from .solve import SolverError, Solution, available_memory
 from .sources import total_source_field
-
-
-@njit(parallel=True, cache=True)
-def _single_layer(points, tri, out):
-    """out[i, f] = I_f(points[i]) / 4pi (m)."""
-    for i in prange(points.shape[0]):
-        for f in range(tri.shape[0]):
-            out[i, f] = kernels.triangle_potential(points[i], tri[f, 0], tri[f, 1], tri[f, 2]) * kernels.INV_4PI
 
 
 class ElementLaw:
@@ -75,8 +66,8 @@ class _TetProblem:
             raise SolverError(f"the nonlinear solve of {n} unknowns needs {need / 2**30:.1f} GiB "
                               "(single-layer matrix and Jacobian); use a coarser mesh")
         progress(f"assembling single-layer matrix: {n} nodes x {nf} faces")
-        self.S = np.empty((n, nf))
-        _single_layer(mesh.nodes, mesh.nodes[self.topo.faces], self.S)
+        tri = kernels.triangle_mesh(mesh.nodes, self.topo.faces)
+        self.S = kernels.mesh_single_layer_matrix(tri.nodes, tri)
         self.n = n
 
     def field(self, x):

@@ -188,4 +188,5 @@ def face_charges(topo: TetTopology, M: np.ndarray) -> np.ndarray:
 def potentials_at_nodes(nodes: np.ndarray, topo: TetTopology, sigmas: np.ndarray) -> np.ndarray:
     """Scalar potentials (n, k), A, at the nodes of k sets of face charges
     sigmas (nf, k), A/m, on the topology's faces."""
-    return kernels.face_potentials_at_points(nodes, nodes[topo.faces], np.ascontiguousarray(sigmas))
+    mesh = kernels.triangle_mesh(nodes, topo.faces)
+    return kernels.mesh_potentials_at_points(mesh.nodes, mesh, np.ascontiguousarray(sigmas, dtype=float))
