@@ -51,5 +51,5 @@ def table(kind, sizes):
 
 if __name__ == "__main__":
     quick = "--quick" in sys.argv
-    table("tet", [0.4, 0.3] if quick else [0.4, 0.3, 0.22, 0.18, 0.15])
-    table("hex", [0.25, 0.18] if quick else [0.25, 0.18, 0.14, 0.115])
+    table("tet", [0.4, 0.3] if quick else [0.4, 0.3, 0.22, 0.18, 0.15, 0.12, 0.1])
+    table("hex", [0.25, 0.18] if quick else [0.25, 0.18, 0.14, 0.115, 0.095])
