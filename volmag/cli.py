@@ -1,6 +1,9 @@
 """Command line: `volmag run CASE [--out FILE.h5] [--json] [--quiet] [--debug]`,
 `volmag check DIR`, `volmag show FILE.h5`,
-`volmag view FILE.h5`, `volmag report FILE.h5`, `volmag export FILE.h5 --vtu OUT`.
+`volmag view FILE.h5`, `volmag report FILE.h5`, `volmag export FILE.h5 --vtu OUT`,
+`volmag sweep CASE --set KEY=V1,V2`, `volmag sweep-plot DIR --x KEY --y QUANTITY`,
+`volmag demag CASE` (N(chi) tables), `volmag correct CASE --body NAME --data FILE.csv
+--out OUT.csv` (measured -> intrinsic curve).
 
 Exit status: 0 converged and every expectation holds; 1 an expectation failed
 or the solve did not converge; 2 bad input (case file, mesh file, a model too
@@ -38,6 +41,8 @@ def main(argv=None) -> int:
     add_check_parser(sub)
     add_show_parser(sub)
     add_view_parsers(sub)
+    add_sweep_parsers(sub)
+    add_correction_parsers(sub)
     args = parser.parse_args(argv)
     # SIGTERM (a CI time-out) unwinds like Ctrl-C, so temporary files are removed.
     previous = signal.signal(signal.SIGTERM, _interrupt)
@@ -116,10 +121,49 @@ def format_summary(s: dict) -> str:
         lines.append(f"probe {name}: {p['points']} points, mean B "
                      f"[{', '.join(f'{v:.6g}' for v in p['B'])}] T, of which from the bodies "
                      f"[{', '.join(f'{v:.6g}' for v in p.get('dB', [np.nan] * 3))}] T")
+        lines += _probe_metric_lines(p)
+    for name, f in s.get("forces", {}).items():
+        lines.append(f"force on {name}: F [{', '.join(f'{v:.6g}' for v in f['F'])}] N, torque "
+                     f"[{', '.join(f'{v:.6g}' for v in f['torque'])}] N m about "
+                     f"[{', '.join(f'{v:.6g}' for v in f['about'])}] m")
     lines += [f"WARNING: {w}" for w in s.get("warnings", [])]
+    if s.get("cautions"):
+        lines += ["", "CAUTION" + _caution_reason(s)] + [f"  - {c}" for c in s["cautions"]]
     if s["expect"]:
         lines += ["", format_expectations(s["expect"])]
     return "\n".join(lines)
+
+
+def _probe_metric_lines(p: dict) -> list[str]:
+    """Region metrics of one probe (summary entry) and its tolerance outcome."""
+    if p.get("max_dB") is None:  # older results files, or no finite point
+        return []
+    ppm = p.get("max_distortion_ppm")
+    comp = p.get("component_homogeneity_ppm")
+    out = [f"  max |B| {p['max_abs_B']:.4g} T, max |dB| {p['max_dB']:.4g} T, max distortion "
+           + ("- (the applied field vanishes at a point)" if ppm is None else f"{ppm:.4g} ppm")
+           + (f"; peak-to-peak over mean |B|: |B| {p['homogeneity_ppm']:.4g} ppm, Bx/By/Bz "
+              + "/".join(f"{v:.4g}" for v in comp) + " ppm" if comp is not None else "")]
+    t = p.get("tolerance")
+    if t is not None:
+        got = "-" if t["got"] is None else f"{t['got']:.4g}"
+        out.append(f"  tolerance {t['quantity']} <= {t['max']:g}: {'pass' if t['ok'] else 'FAIL'} (got {got})")
+    return out
+
+
+def _caution_reason(s: dict) -> str:
+    """Why a run carries cautions: probes at or above 0.5 mT, forces computed."""
+    from .cautions import IMPLANT_LIMIT_T
+    high = [f"{n} {p['max_abs_B'] * 1e3:.3g} mT" for n, p in s["probes"].items()
+            if (p.get("max_abs_B") or 0.0) >= IMPLANT_LIMIT_T]
+    why = ([f"|B| reaches 0.5 mT or more at probes ({', '.join(high)})"] if high else []) \
+        + (["forces on bodies were computed"] if s.get("forces") else [])
+    return f" ({'; '.join(why)}):" if why else ":"
+
+
+def _expected(e: dict) -> str:
+    """The expected value of an outcome row, or its bound ("<= 50")."""
+    return {"max": "<= ", "min": ">= "}.get(e.get("bound"), "") + f"{e['value']:.6g}"
 
 
 def format_expectations(expect: list) -> str:
@@ -128,8 +172,8 @@ def format_expectations(expect: list) -> str:
     for e in expect:
         got = "-" if e.get("got") is None else f"{e['got']:.6g}"
         tol = f"{e['tolerance']:.3g}" if "tolerance" in e else "-"
-        rows.append(("pass" if e["ok"] else "FAIL", e["quantity"], f"{e['value']:.6g}", got, tol,
-                     str(e.get("line") or "")))
+        rows.append(("pass" if e["ok"] else "FAIL", e["quantity"], _expected(e), got,
+                     "-" if e.get("bound") else tol, str(e.get("line") or "")))
     widths = [max(len(r[k]) for r in rows) for k in range(len(rows[0]))]
     passed = sum(bool(e["ok"]) for e in expect)
     lines = [f"expectations: {passed} of {len(expect)} pass"]
@@ -220,7 +264,7 @@ def _check_line(r: dict, width: int) -> str:
     line = (f"{r['case']:<{width}}  {r['outcome']:<5}  {r['passed']:>3}/{r['total']:<3} expectations  "
             f"{r['seconds']:6.1f} s")
     details = [f"    FAIL {e['quantity']}: got {'-' if e['got'] is None else format(e['got'], '.6g')}, "
-               f"expected {e['value']:.6g} +- {e['tolerance']:.3g}"
+               f"expected {_expected(e)}" + ("" if e.get("bound") else f" +- {e['tolerance']:.3g}")
                + (f" ({e['error']})" if e.get("error") else "")
                for e in r["expect"] if not e["ok"]]
     if r.get("error"):
@@ -373,6 +417,217 @@ def cmd_export(args) -> int:
         print(f"volmag: VTK file written to {out}", file=sys.stderr)
         return EXIT_OK
     return _with_results(args, export)
+
+
+# ---------------------------------------------------------------------------
+# volmag sweep CASE --set KEY=V1,V2: many points of one case on a Dask cluster
+
+def add_sweep_parsers(sub) -> None:
+    s = sub.add_parser("sweep", help="run a case over lists of values of its keys, on a Dask cluster")
+    s.add_argument("case", type=Path)
+    s.add_argument("--set", action="append", default=[], metavar="KEY=V1,V2,...", dest="sets",
+                   help="a case key path (material.sample.susceptibility, body.cabinet.position[0]) and its "
+                        "values; repeat for more keys (replaces the case file's [sweep] table)")
+    mode = s.add_mutually_exclusive_group()
+    mode.add_argument("--grid", action="store_const", const="grid", dest="mode",
+                      help="every combination of the values (the default)")
+    mode.add_argument("--zip", action="store_const", const="zip", dest="mode",
+                      help="the i-th values of all keys together")
+    s.add_argument("--out", type=Path, metavar="DIR", help="folder of the results (default: CASE name + _sweep)")
+    s.add_argument("--scheduler", metavar="ADDRESS", help="use the running Dask scheduler at ADDRESS "
+                                                          "(default: a local cluster)")
+    s.add_argument("--workers", type=int, metavar="N", help="local cluster size (default: one per core)")
+    s.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    s.add_argument("--progress", action="store_true", help="progress on stderr even when it is not a terminal")
+    s.set_defaults(func=cmd_sweep)
+    p = sub.add_parser("sweep-plot", help="plot a result of a sweep against a swept key (PNG)")
+    p.add_argument("folder", type=Path, metavar="DIR")
+    p.add_argument("--x", required=True, metavar="KEY", help="swept key for the horizontal axis")
+    p.add_argument("--y", required=True, metavar="QUANTITY", help="result column, e.g. bodies.ball.mean_M.z")
+    p.add_argument("--out", type=Path, help="PNG file (default: DIR/<QUANTITY>.png)")
+    p.set_defaults(func=cmd_sweep_plot)
+
+
+def cmd_sweep(args) -> int:
+    """Exit 0 when every point is ok, 1 when a point failed, did not converge
+    or missed an expectation, 2 for a bad case, key or cluster address."""
+    from . import sweep as sw
+    from .case import CaseError
+    from .progress import Progress
+    progress = Progress(True if args.progress else False if args.quiet else None)
+    out = args.out or Path(args.case.stem + "_sweep")
+    try:
+        plan = sw.plan(args.case, dict(sw.parse_set(s) for s in args.sets), args.mode)
+    except (CaseError, sw.SweepError) as e:
+        print(f"volmag: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    if all(p.error for p in plan.points):
+        print(f"volmag: error: no point of the sweep is a valid case: {plan.points[0].error}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    pending = sw.pending(plan, out)
+    try:
+        if pending:
+            workers = args.workers or (None if args.scheduler else min(len(pending), sw.usable_cores()))
+            with sw.cluster(args.scheduler, workers) as client:
+                progress(f"Dask scheduler {client.scheduler.address}, "
+                         f"{len(client.scheduler_info()['workers'])} workers")
+                rows = sw.run_sweep(plan, out, client, progress)
+        else:
+            rows = sw.run_sweep(plan, out, None, progress)
+    except KeyboardInterrupt:
+        print(f"volmag: interrupted; finished points are kept in {out}, run the sweep again to resume",
+              file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except OSError as e:  # no scheduler at that address, or the folder cannot be written
+        print(f"volmag: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    counts = {k: sum(r["status"] == k for r in rows) for k in sw.STATUSES}
+    print(f"{len(rows)} points: " + ", ".join(f"{n} {k}" for k, n in counts.items() if n)
+          + f" ({sum(r['resumed'] for r in rows)} from earlier runs); table in {out / 'sweep.csv'}")
+    for r in rows:
+        if r["status"] != "ok":
+            print(f"  point {r['point']} {r['status']}: {r['error']}")
+    return EXIT_OK if counts["ok"] == len(rows) else EXIT_FAILED
+
+
+def cmd_sweep_plot(args) -> int:
+    from .sweeptable import plot_sweep
+    out = args.out or args.folder / (args.y.replace("/", "_") + ".png")
+    try:
+        written = plot_sweep(args.folder, args.x, args.y, out)
+    except ImportError as e:
+        print(f"volmag: error: sweep-plot needs matplotlib (pip install 'volmag[viz]'): {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except (OSError, ValueError, KeyError) as e:
+        print(f"volmag: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    print(f"volmag: plot written to {written}", file=sys.stderr)
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------
+# volmag demag CASE: N(chi) tables;  volmag correct CASE: measured -> intrinsic curve
+
+def add_correction_parsers(sub) -> None:
+    d = sub.add_parser("demag", help="demagnetising tensor of each body across susceptibility, N(chi)")
+    d.add_argument("case", type=Path)
+    d.add_argument("--chi", default="0,1,10,100,1000,inf",
+                   help="susceptibilities, comma-separated; inf is the ideal soft limit (default 0,1,10,100,1000,inf)")
+    d.add_argument("--body", action="append", help="only this body (repeatable; default: every body)")
+    d.add_argument("--fluxmetric", choices=("x", "y", "z"),
+                   help="also the mid-plane fluxmetric factor along this axis (default: the case's [demag] fluxmetric)")
+    d.add_argument("--out", type=Path, help="CSV table to write (default: CASE name with _demag.csv, here)")
+    c = sub.add_parser("correct", help="intrinsic curve M(H_internal) of a sample from its measured moment curve")
+    c.add_argument("case", type=Path)
+    c.add_argument("--body", required=True, help="the sample: a body of the case")
+    c.add_argument("--data", type=Path, required=True,
+                   help="CSV: applied field, moment (along the case's uniform field), one point a line")
+    c.add_argument("--field-unit", help="A/m, kA/m, Oe, kOe, T or mT (T: mu0 H); or a units row in the data")
+    c.add_argument("--moment-unit", help="A*m^2 or emu; or a units row in the data")
+    c.add_argument("--volume", type=float, metavar="M3", help="sample volume, m^3 (default: the body's shape volume)")
+    c.add_argument("--mass", type=float, metavar="KG", help="sample mass, kg (with --density)")
+    c.add_argument("--density", type=float, metavar="KG_M3", help="sample density, kg/m^3 (with --mass)")
+    c.add_argument("--out", type=Path, required=True, help="corrected curve to write (CSV)")
+    c.add_argument("--results", type=Path, help="HDF5 results file (default: OUT with .h5)")
+    c.add_argument("--plot", type=Path, help="PNG plot (default: OUT with .png)")
+    c.add_argument("--tolerance", type=float, default=1e-3,
+                   help="largest relative mismatch of the simulated apparent curve (default 1e-3)")
+    c.add_argument("--max-iterations", type=int, default=12, help="curve updates at most (default 12)")
+    c.add_argument("--linear-tolerance", type=float, default=0.01,
+                   help="linear region: chord susceptibility within this of the first point's (default 0.01)")
+    for p in (d, c):
+        p.add_argument("--refine", type=int, default=0, metavar="LEVELS",
+                       help="refinement study on LEVELS >= 3 meshes (sizes x0.7 per level): error bars")
+        p.add_argument("--cgs", action="store_true", help="also give cgs values (4 pi N, chi / 4 pi, Oe, emu/cm^3)")
+        p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+        p.add_argument("--quiet", action="store_true", help="no progress on stderr")
+        p.add_argument("--progress", action="store_true", help="progress on stderr even when it is not a terminal")
+        p.add_argument("--debug", action="store_true", help="show tracebacks")
+    d.set_defaults(func=cmd_demag)
+    c.set_defaults(func=cmd_correct)
+
+
+def _bad_input(args, e) -> int:
+    if args.debug:
+        raise e
+    print(f"volmag: error: {e}", file=sys.stderr)
+    return EXIT_BAD_INPUT
+
+
+def cmd_demag(args) -> int:
+    from .case import CaseError, load_case
+    from .demagtable import demag_table, format_table, parse_chis, refinement_study, table_json, write_table_csv
+    from .progress import Progress
+    from .run import _python_signal_handlers
+    from .solve import Model, SolverError
+    progress = Progress(True if args.progress else False if args.quiet else None)
+    try:
+        if args.refine and args.refine < 3:
+            raise ValueError(f"--refine needs at least 3 meshes (got {args.refine})")
+        chis = parse_chis(args.chi)
+        case = load_case(args.case)
+        bodies = {b.name: b for b in case.bodies}
+        unknown = [n for n in args.body or () if n not in bodies]
+        if unknown:
+            raise ValueError(f"no body named {unknown[0]!r}; bodies: {', '.join(bodies)}")
+        flux = args.fluxmetric or (case.demag.fluxmetric if case.demag else None)
+        tables = []
+        with _python_signal_handlers():
+            for name in args.body or bodies:
+                if args.refine:
+                    tables.append(refinement_study(bodies[name], chis, args.refine, options=case.solver,
+                                                   fluxmetric_axis=flux, progress=progress))
+                else:
+                    model = Model.build([bodies[name]], progress)
+                    tables.append(demag_table(model, name, chis, case.solver, flux, progress))
+        out = write_table_csv(args.out or Path(args.case.stem + "_demag.csv"), tables, args.cgs)
+    except (CaseError, SolverError, ValueError, FileNotFoundError, OSError) as e:
+        return _bad_input(args, e)
+    progress(f"table written to {out}")
+    if args.json:
+        print(json.dumps({t.body: table_json(t, args.cgs) for t in tables}))
+    else:
+        print("\n\n".join(format_table(t, args.cgs) for t in tables))
+    return EXIT_OK
+
+
+def cmd_correct(args) -> int:
+    from .case import CaseError, load_case
+    from .correction import (correct_curve, correction_summary, field_direction, format_correction,
+                             plot_correction, read_curve, sample_volume, write_corrected_csv,
+                             write_correction_results)
+    from .progress import Progress
+    from .run import _python_signal_handlers
+    from .solve import Model, SolverError
+    progress = Progress(True if args.progress else False if args.quiet else None)
+    try:
+        if args.refine and args.refine < 3:
+            raise ValueError(f"--refine needs at least 3 meshes (got {args.refine})")
+        case = load_case(args.case)
+        body = next((b for b in case.bodies if b.name == args.body), None)
+        if body is None:
+            raise ValueError(f"no body named {args.body!r}; bodies: {', '.join(b.name for b in case.bodies)}")
+        curve = read_curve(args.data, args.field_unit, args.moment_unit)
+        volume, how = sample_volume(body, args.volume, args.mass, args.density)
+        u = field_direction(case.sources)
+        with _python_signal_handlers():
+            model = Model.build([body], progress)
+            c = correct_curve(model, body.name, curve.H_applied, curve.moment, volume, u, case.solver,
+                              tolerance=args.tolerance, max_iterations=args.max_iterations,
+                              linear_tolerance=args.linear_tolerance, refine=args.refine, volume_from=how,
+                              progress=progress)
+        written = [write_corrected_csv(args.out, c, args.cgs),
+                   write_correction_results(args.results or args.out.with_suffix(".h5"), c, body.name, case,
+                                            curve, model, __version__),
+                   plot_correction(args.plot or args.out.with_suffix(".png"), c, body.name)]
+    except (CaseError, SolverError, ValueError, FileNotFoundError, OSError) as e:
+        return _bad_input(args, e)
+    progress("written: " + ", ".join(map(str, written)))
+    if args.json:
+        print(json.dumps(correction_summary(c, body.name, curve)))
+    else:
+        print(format_correction(c, body.name))
+    return EXIT_OK if c.converged else EXIT_FAILED
 
 
 if __name__ == "__main__":
