@@ -18,7 +18,7 @@ import hashlib
 import math
 import re
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -26,17 +26,35 @@ import numpy as np
 from .geometry import (Body, Box, Cut, Cylinder, Ellipsoid, MeshSpec, Placement, Sphere,
                        SurfaceFile, Tube, local_bounds)
 from .materials import BHCurve, BHCurveError, LinearMaterial, PermanentMagnet
+from .distortion import METRICS as PROBE_METRICS
 from .probes import KINDS as PROBE_KINDS, Probe
-from .run import parse_quantity
+from .run import QUANTITY_ROOTS, parse_quantity
 from .solve import SolverOptions
-from .sources import UniformField
+from .sources import Arc, Coil, CurrentLoop, PointDipole, Polyline, Racetrack, Segment, UniformField
 from .units import LENGTH_UNITS
 
-# Parts of the design this version reads but cannot solve yet: naming them
-# gives a clear "not supported" instead of "unknown key", so a later version
-# only has to lift the check.
+# Material laws besides the linear susceptibility (nonlinear B-H curve,
+# permanent magnet); each excludes the others (see _material).
 MATERIAL_LAW_KEYS = ("bh_curve", "remanence", "knee_field")
-FUTURE_SOURCES = ("loop", "coil", "bar", "arc", "dipole")
+
+#: Source types and their keys: (required, optional). Lengths are in the
+#: file's unit, currents in A, moments in A m^2, angles in degrees; a
+#: uniform source takes exactly one of H (A/m) and B (T).
+SOURCE_KEYS = {
+    "uniform": ((), ("H", "B")),
+    "loop": (("center", "normal", "radius", "current"), ("turns",)),
+    "coil": (("center", "axis", "inner_radius", "outer_radius", "length", "turns", "current"), ("rel_tol",)),
+    "segment": (("start", "end", "current"), ()),
+    "polyline": (("points", "current"), ("closed",)),
+    "arc": (("center", "normal", "radius", "start_angle_deg", "end_angle_deg", "current"), ("reference",)),
+    "racetrack": (("center", "axis", "straight_length", "inner_radius", "outer_radius", "height", "turns",
+                   "current"), ("straight_width", "reference", "rel_tol")),
+    "dipole": (("position", "moment"), ()),
+}
+SOURCE_TYPES = tuple(SOURCE_KEYS)
+_SOURCE_LENGTHS = ("center", "radius", "inner_radius", "outer_radius", "length", "height", "straight_length",
+                   "straight_width", "start", "end", "position")  # and each of `points`
+_SOURCE_DIRECTIONS = ("normal", "axis", "reference")  # need not be normalised; not converted
 
 #: Shape types and the size keys each one needs (lengths in the file's unit).
 SHAPE_SIZES = {
@@ -54,29 +72,32 @@ _SIZE_KEYS = tuple(dict.fromkeys(k for keys in SHAPE_SIZES.values() for k in key
 #: shapes share "body.rotation"). The parser accepts nothing else, and
 #: docs/case-files.md documents every one of them (a test holds the two together).
 KEYS = {
-    "": ("title", "length_unit", "material", "body", "source", "probe", "solver", "demag", "expect"),
+    "": ("title", "length_unit", "material", "body", "source", "probe", "solver", "demag", "forces", "expect", "sweep"),
     "material": ("name", "susceptibility") + MATERIAL_LAW_KEYS,
     "body": ("name", "material", "shape", "position", "rotation", "mesh"),
     "body.shape": ("type",) + _SIZE_KEYS + ("subtract",),
     "body.shape.subtract": ("type",) + _SIZE_KEYS + ("position", "rotation"),
     "body.rotation": ("axis", "angle_deg"),
     "body.mesh": ("element", "size", "surface_size"),
-    "source": ("type", "H", "B"),
-    "probe": ("name",) + PROBE_KINDS,
+    "source": ("type",) + tuple(dict.fromkeys(k for req, opt in SOURCE_KEYS.values() for k in req + opt)),
+    "probe": ("name",) + PROBE_KINDS + ("points_file", "tolerance"),
     "probe.line": ("start", "end", "n"),
     "probe.plane": ("origin", "u", "v", "n"),
     "probe.box": ("min", "max", "n"),
+    "probe.sphere": ("center", "radius", "n"),
+    "probe.tolerance": ("quantity", "max"),
     "solver": ("method", "tolerance", "max_iterations"),
     "demag": ("bodies", "fluxmetric"),
-    "expect": ("quantity", "value", "rel_tol", "abs_tol"),
+    "forces": ("bodies", "about"),
+    "expect": ("quantity", "value", "rel_tol", "abs_tol", "min", "max"),
+    "sweep": ("set", "mode"),  # read by volmag.sweep; a single run ignores it
 }
-
-SOURCE_TYPES = ("uniform",) + FUTURE_SOURCES
 SOLVER_METHODS = ("auto", "dense", "fft", "fmm")
 MESH_ELEMENTS = ("tet", "hex")
 AXES = ("x", "y", "z")
 _SURFACE_SUFFIXES = (".stl", ".obj", ".ply")
 _MAX_PROBE_POINTS = 10_000_000
+_PROBE_WAYS = PROBE_KINDS + ("points_file",)  # the keys that give a probe its points
 _NAME_RE = re.compile(r"^[A-Za-z0-9_-]+$")   # names end up in dotted paths and HDF5 groups
 _COMPONENT_RE = re.compile(r"^[A-Za-z0-9_-]+(\[\d+\])?$")
 _BARE_KEY = frozenset("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789_-")
@@ -105,15 +126,26 @@ class DemagRequest:
 
 
 @dataclass(frozen=True)
+class ForceRequest:
+    """Bodies whose force (N) and torque (N m) are wanted, and the torque
+    reference point `about` (m; None: each body's centroid)."""
+    bodies: tuple[str, ...]
+    about: tuple[float, float, float] | None = None
+
+
+@dataclass(frozen=True)
 class Expectation:
-    """A checked result: |got - value| <= max(abs_tol, rel_tol*|value|).
-    `quantity` is a dotted path into the run summary (``demag.sample.N.zz``);
-    `value` is in SI units; `line` is where the expectation is in the case file."""
+    """A checked result. `quantity` is a dotted path into the run summary
+    (``demag.sample.N.zz``); `value` is in SI units (ppm for the ppm metrics).
+    With `bound` None it holds when |got - value| <= max(abs_tol, rel_tol*|value|);
+    with `bound` "max" when got <= value, with "min" when got >= value.
+    `line` is where it is in the case file."""
     quantity: str
     value: float
     rel_tol: float | None = None
     abs_tol: float | None = None
     line: int | None = None
+    bound: str | None = None
 
 
 @dataclass(frozen=True)
@@ -133,6 +165,8 @@ class Case:
     solver: SolverOptions
     demag: DemagRequest | None
     expects: tuple
+    forces: ForceRequest | None = None
+    tolerances: dict = field(default_factory=dict)  # probe name -> its tolerance, an Expectation
 
 
 def load_case(path) -> Case:
@@ -158,6 +192,12 @@ def parse_case(text: str, path: str = "<string>", base_dir=None) -> Case:
         p = Path(path)
         base_dir = p.parent if p.is_file() else Path.cwd()
     return _parse(text, str(path), Path(base_dir), text.encode("utf-8"))
+
+
+def key_lines(text: str) -> dict:
+    """1-based line of every key, table and array element of TOML `text`, by
+    key path such as ("body", 2, "shape", "radius") (first occurrence)."""
+    return _Locator(text).locate()
 
 
 def _parse(text: str, path: str, base_dir: Path, data: bytes) -> Case:
@@ -187,22 +227,26 @@ def _case(ctx: "_Context", doc: dict, text: str, sha: str) -> Case:
 
     solver = _solver(ctx, ctx.table(doc, (), "solver", default={}))
     names = [b.name for b in bodies]
-    demag = None
-    if "demag" in doc:
-        demag = _demag(ctx, ctx.table(doc, (), "demag"), names)
+    demag = _demag(ctx, ctx.table(doc, (), "demag"), names) if "demag" in doc else None
+    forces = _forces(ctx, ctx.table(doc, (), "forces"), names) if "forces" in doc else None
 
-    if not sources and demag is None:
+    magnets = any(np.any(b.material.remanence_vector()) for b in bodies)  # they drive themselves
+    if not sources and demag is None and not magnets:
         magnetic = [b.name for b in bodies if b.material.is_magnetic]
         if magnetic:
             raise ctx.error(("source",), f"body {magnetic[0]!r} is magnetic but there is no [[source]] "
                                          "and no [demag] table: nothing drives it")
 
-    expects = tuple(_expect(ctx, tab, ("expect", i), names, {p.name: len(p.points) for p in probes}, demag)
-                    for i, tab in enumerate(ctx.tables(doc, "expect")))
+    known = _Known(names, {p.name: len(p.points) for p in probes}, demag, forces)
+    expects = tuple(_expect(ctx, tab, ("expect", i), known) for i, tab in enumerate(ctx.tables(doc, "expect")))
+    tolerances = {p.name: _tolerance(ctx, ctx.table(tab, ("probe", i), "tolerance"), ("probe", i, "tolerance"),
+                                     p.name, known)
+                  for i, (p, tab) in enumerate(zip(probes, ctx.tables(doc, "probe"))) if "tolerance" in tab}
     _check_overlaps(ctx, bodies)
     return Case(title=title, length_unit=unit, path=ctx.file, text=text, sha256=sha,
                 materials=materials, bodies=tuple(bodies), sources=sources, probes=tuple(probes),
-                solver=solver, demag=demag, expects=expects)
+                solver=solver, demag=demag, expects=expects + tuple(tolerances.values()), forces=forces,
+                tolerances=tolerances)
 
 
 def _named(ctx, doc, key, build) -> list:
@@ -358,27 +402,88 @@ def _mesh(ctx, tab, path) -> MeshSpec:
     return MeshSpec(element, size, surface)
 
 
-def _source(ctx, tab, path) -> UniformField:
+def _source(ctx, tab, path):
+    """A [[source]] table -> a source object of volmag.sources, in SI units."""
+    if "type" not in tab:  # a misspelt "type" is best reported as such
+        ctx.keys(tab, path, KEYS["source"])
     kind = ctx.string(tab, path, "type", choices=SOURCE_TYPES)
-    if kind in FUTURE_SOURCES:
-        raise ctx.error(path + ("type",), f"{kind!r} sources are not supported in this version")
-    ctx.keys(tab, path, KEYS["source"], required=("type",))
-    if "H" in tab and "B" in tab:
-        raise ctx.error(path + ("B",), "give either H (A/m) or B (T), not both")
-    if "H" in tab:
-        return UniformField(ctx.vector(tab["H"], path + ("H",)))
-    if "B" in tab:
-        return UniformField.from_B(ctx.vector(tab["B"], path + ("B",)))
-    raise ctx.error(path + ("H",), "missing: give H = [..] (A/m) or B = [..] (T)")
+    required, optional = SOURCE_KEYS[kind]
+    for k in tab:
+        if k in KEYS["source"] and k not in ("type",) + required + optional:
+            raise ctx.error(path + (k,), f"does not apply to a {kind} source (its keys: "
+                                         f"{', '.join(required + optional)})")
+    ctx.keys(tab, path, ("type",) + required + optional, required)
+    if kind == "uniform":
+        if "H" in tab and "B" in tab:
+            raise ctx.error(path + ("B",), "give either H (A/m) or B (T), not both")
+        if "H" in tab:
+            return UniformField(ctx.vector(tab["H"], path + ("H",)))
+        if "B" in tab:
+            return UniformField.from_B(ctx.vector(tab["B"], path + ("B",)))
+        raise ctx.error(path + ("H",), "missing: give H = [..] (A/m) or B = [..] (T)")
+    v = {k: _source_value(ctx, tab[k], path + (k,), k) for k in required + optional if k in tab}
+    _check_source(ctx, kind, v, path)
+    try:
+        if kind == "arc":
+            return Arc(v["center"], v["normal"], v["radius"], math.radians(v["start_angle_deg"]),
+                       math.radians(v["end_angle_deg"]), v["current"], v.get("reference"))
+        return _SOURCE_CLASSES[kind](**v)
+    except ValueError as e:  # a condition the checks here missed: still name the table
+        raise ctx.error(path, str(e)) from None
+
+
+_SOURCE_CLASSES = {"loop": CurrentLoop, "coil": Coil, "segment": Segment, "polyline": Polyline,
+                   "racetrack": Racetrack, "dipole": PointDipole}  # keys are the constructors' names
+
+
+def _source_value(ctx, value, path, key):
+    """One source key's value; lengths converted to metres."""
+    if key == "points":
+        if not isinstance(value, list) or len(value) < 2:
+            raise ctx.error(path, "must be an array of at least two [x, y, z]")
+        return tuple(ctx.metres(ctx.vector(p, path + (i,))) for i, p in enumerate(value))
+    if key == "closed":
+        return ctx.boolean(value, path)
+    if key in ("center", "start", "end", "position", "moment") + _SOURCE_DIRECTIONS:
+        vec = ctx.vector(value, path)
+        if key in _SOURCE_DIRECTIONS and not np.linalg.norm(vec) > 0:
+            raise ctx.error(path, "must not be the zero vector")
+        return ctx.metres(vec) if key in _SOURCE_LENGTHS else vec
+    x = ctx.number(value, path, positive=key in ("radius", "outer_radius", "turns", "rel_tol"))
+    if key in ("inner_radius", "length", "height", "straight_length", "straight_width") and x < 0:
+        raise ctx.error(path, f"must be >= 0 (got {x:g})")
+    if key == "rel_tol" and not 1e-14 <= x < 0.1:
+        raise ctx.error(path, f"must lie in [1e-14, 0.1) (got {x:g})")
+    return ctx.metres(x) if key in _SOURCE_LENGTHS else x
+
+
+def _check_source(ctx, kind, v, path):
+    """Conditions between the keys of one source."""
+    if "inner_radius" in v and v["inner_radius"] > v["outer_radius"]:
+        raise ctx.error(path + ("inner_radius",), "must not exceed outer_radius")
+    if kind == "segment" and v["start"] == v["end"]:
+        raise ctx.error(path + ("end",), "a segment needs two different end points")
+    if kind == "polyline" and v.get("closed") and len(v["points"]) < 3:
+        raise ctx.error(path + ("points",), "a closed polyline needs at least three points")
+    if kind == "arc":
+        span = v["end_angle_deg"] - v["start_angle_deg"]
+        if not 0 < abs(span) <= 360:
+            raise ctx.error(path + ("end_angle_deg",),
+                            f"the arc must span more than 0 and at most 360 degrees (spans {span:g})")
+    if "reference" in v:
+        axis = "normal" if "normal" in v else "axis"
+        r, a = np.asarray(v["reference"]), np.asarray(v[axis])
+        if np.linalg.norm(np.cross(r, a)) <= 1e-9 * np.linalg.norm(r) * np.linalg.norm(a):
+            raise ctx.error(path + ("reference",), f"must not be parallel to {axis}")
 
 
 def _probe(ctx, tab, path) -> Probe:
     ctx.keys(tab, path, KEYS["probe"], required=("name",))
     name = ctx.name(tab, path)
-    given = [k for k in PROBE_KINDS if k in tab]
+    given = [k for k in _PROBE_WAYS if k in tab]
     if len(given) != 1:
         where = path + (given[1],) if len(given) > 1 else path
-        raise ctx.error(where, f"a probe needs exactly one of {', '.join(PROBE_KINDS)}")
+        raise ctx.error(where, f"a probe needs exactly one of {', '.join(_PROBE_WAYS)}")
     kind, m = given[0], ctx.metres
     kpath = path + (kind,)
     if kind == "points":
@@ -386,28 +491,46 @@ def _probe(ctx, tab, path) -> Probe:
             raise ctx.error(kpath, "must be a non-empty array of [x, y, z]")
         _check_count(ctx, kpath, len(tab["points"]))
         return Probe.from_points(name, [m(ctx.vector(p, kpath + (i,))) for i, p in enumerate(tab["points"])])
+    if kind == "points_file":
+        return _points_file(ctx, tab, path, name)
     spec = ctx.table(tab, path, kind)
+    ctx.keys(spec, kpath, KEYS[f"probe.{kind}"], required=KEYS[f"probe.{kind}"])
     if kind == "line":
-        ctx.keys(spec, kpath, KEYS["probe.line"], required=KEYS["probe.line"])
         a, b = (ctx.vector(spec[k], kpath + (k,)) for k in ("start", "end"))
         n = ctx.counts(spec, kpath, 1)[0]
         if a == b:
             raise ctx.error(kpath + ("end",), "a line needs two different end points")
         return Probe.line(name, m(a), m(b), n)
     if kind == "plane":
-        ctx.keys(spec, kpath, KEYS["probe.plane"], required=KEYS["probe.plane"])
         o, u, v = (ctx.vector(spec[k], kpath + (k,)) for k in ("origin", "u", "v"))
         nu, nv = ctx.counts(spec, kpath, 2)
         cross = np.linalg.norm(np.cross(u, v))
         if not cross > 1e-12 * np.linalg.norm(u) * np.linalg.norm(v):
             raise ctx.error(kpath + ("v",), "u and v must be non-zero and not parallel")
         return Probe.plane(name, m(o), m(u), m(v), nu, nv)
-    ctx.keys(spec, kpath, KEYS["probe.box"], required=KEYS["probe.box"])
+    if kind == "sphere":
+        c = ctx.vector(spec["center"], kpath + ("center",))
+        r = ctx.number(spec["radius"], kpath + ("radius",), positive=True)
+        return Probe.sphere(name, m(c), m(r), ctx.counts(spec, kpath, 1)[0])
     lo, hi = (ctx.vector(spec[k], kpath + (k,)) for k in ("min", "max"))
     n = ctx.counts(spec, kpath, 3)
     if not all(h > l for l, h in zip(lo, hi)):
         raise ctx.error(kpath + ("max",), "each component of max must exceed that of min")
     return Probe.box(name, m(lo), m(hi), n)
+
+
+def _points_file(ctx, tab, path, name) -> Probe:
+    key = path + ("points_file",)
+    rel = ctx.string(tab, path, "points_file")
+    file = (ctx.base_dir / rel).resolve()
+    if not file.is_file():
+        raise ctx.error(key, f"points file not found: {file}")
+    try:
+        probe = Probe.from_file(name, file, ctx.metres(1.0))
+    except (ValueError, OSError, UnicodeDecodeError) as e:
+        raise ctx.error(key, f"bad points file {rel}: {e}") from None
+    _check_count(ctx, key, len(probe.points))
+    return probe
 
 
 def _check_count(ctx, path, n):
@@ -433,60 +556,108 @@ def _solver(ctx, tab) -> SolverOptions:
 def _demag(ctx, tab, names) -> DemagRequest:
     path = ("demag",)
     ctx.keys(tab, path, KEYS["demag"])
-    chosen = tuple(names)
-    if "bodies" in tab:
-        bpath = path + ("bodies",)
-        if not isinstance(tab["bodies"], list) or not tab["bodies"]:
-            raise ctx.error(bpath, "must be a non-empty array of body names")
-        chosen = tuple(ctx.string_value(b, bpath + (i,)) for i, b in enumerate(tab["bodies"]))
-        for i, b in enumerate(chosen):
-            if b not in names:
-                raise ctx.error(bpath + (i,), f"unknown body {b!r}{_hint(b, names)}")
-            if b in chosen[:i]:
-                raise ctx.error(bpath + (i,), f"body {b!r} is listed twice")
-    flux = ctx.string(tab, path, "fluxmetric", choices=AXES, default=None)
-    return DemagRequest(chosen, flux)
+    chosen = _body_names(ctx, tab, path, names)
+    return DemagRequest(chosen, ctx.string(tab, path, "fluxmetric", choices=AXES, default=None))
 
 
-def _expect(ctx, tab, path, bodies, probes, demag) -> Expectation:
-    ctx.keys(tab, path, KEYS["expect"], required=("quantity", "value"))
+def _forces(ctx, tab, names) -> ForceRequest:
+    path = ("forces",)
+    ctx.keys(tab, path, KEYS["forces"])
+    chosen = _body_names(ctx, tab, path, names)
+    about = ctx.metres(ctx.vector(tab["about"], path + ("about",))) if "about" in tab else None
+    return ForceRequest(chosen, about)
+
+
+def _body_names(ctx, tab, path, names) -> tuple:
+    """The `bodies` array of a table (default: every body), each a known body, once."""
+    if "bodies" not in tab:
+        return tuple(names)
+    bpath = path + ("bodies",)
+    if not isinstance(tab["bodies"], list) or not tab["bodies"]:
+        raise ctx.error(bpath, "must be a non-empty array of body names")
+    chosen = tuple(ctx.string_value(b, bpath + (i,)) for i, b in enumerate(tab["bodies"]))
+    for i, b in enumerate(chosen):
+        if b not in names:
+            raise ctx.error(bpath + (i,), f"unknown body {b!r}{_hint(b, names)}")
+        if b in chosen[:i]:
+            raise ctx.error(bpath + (i,), f"body {b!r} is listed twice")
+    return chosen
+
+
+@dataclass(frozen=True)
+class _Known:
+    """What result paths may name: bodies, probes (name -> number of points),
+    and the bodies of the [demag] and [forces] requests (None: no table)."""
+    bodies: list
+    probes: dict
+    demag: DemagRequest | None
+    forces: ForceRequest | None
+
+
+def _expect(ctx, tab, path, known: _Known) -> Expectation:
+    ctx.keys(tab, path, KEYS["expect"], required=("quantity",))
     q = ctx.string(tab, path, "quantity")
-    _check_quantity(ctx, q, path + ("quantity",), bodies, probes, demag)
-    value = ctx.number(tab["value"], path + ("value",))
-    tols = {k: ctx.number(tab[k], path + (k,), positive=True) if k in tab else None
-            for k in ("rel_tol", "abs_tol")}
-    if tols["rel_tol"] is None and tols["abs_tol"] is None:
+    _check_quantity(ctx, q, path + ("quantity",), known)
+    given = [k for k in ("value", "min", "max") if k in tab]
+    if len(given) != 1:
+        raise ctx.error(path + ((given[1],) if given else ()),
+                        "give exactly one of value (with rel_tol or abs_tol), min or max")
+    kind = given[0]
+    value = ctx.number(tab[kind], path + (kind,))
+    tols = {k: ctx.number(tab[k], path + (k,), positive=True) for k in ("rel_tol", "abs_tol") if k in tab}
+    if kind != "value":
+        if tols:
+            raise ctx.error(path + (next(iter(tols)),), f"a bound ({kind}) takes no tolerance")
+        return Expectation(q, value, line=ctx.line_of(path), bound=kind)
+    if not tols:
         raise ctx.error(path + ("rel_tol",), "missing: give rel_tol or abs_tol (or both)")
-    return Expectation(q, value, tols["rel_tol"], tols["abs_tol"], ctx.line_of(path))
+    return Expectation(q, value, tols.get("rel_tol"), tols.get("abs_tol"), ctx.line_of(path))
 
 
-def _check_quantity(ctx, q, path, bodies, probes, demag):
+def _tolerance(ctx, tab, path, probe: str, known: _Known) -> Expectation:
+    """A probe's tolerance: an upper bound on one of its region metrics."""
+    ctx.keys(tab, path, KEYS["probe.tolerance"], required=KEYS["probe.tolerance"])
+    q = ctx.string(tab, path, "quantity")
+    metric = q.split(".")[0]
+    if metric not in PROBE_METRICS:
+        raise ctx.error(path + ("quantity",), f"{q!r} is not one of {', '.join(PROBE_METRICS)}"
+                                              f"{_hint(metric, PROBE_METRICS, None)}")
+    full = f"probes.{probe}.{q}"
+    _check_quantity(ctx, full, path + ("quantity",), known)
+    limit = ctx.number(tab["max"], path + ("max",))
+    if limit < 0:
+        raise ctx.error(path + ("max",), f"must be >= 0 (got {limit:g})")
+    return Expectation(full, limit, line=ctx.line_of(path), bound="max")
+
+
+def _check_quantity(ctx, q, path, known: _Known):
     """A dotted result path (grammar in :func:`volmag.run.parse_quantity`) that
-    names an existing body, probe (point index in range) or demag request.
-    `probes` maps probe names to their numbers of points."""
+    names an existing body, probe (point index in range), [demag] or [forces] body."""
     parts = q.split(".")
     if not all(_COMPONENT_RE.match(p) for p in parts):
         raise ctx.error(path, f"{q!r} is not a dotted path such as 'bodies.sample.mean_M.z'")
-    roots = ("demag", "bodies", "solver", "probes")
-    if parts[0] not in roots:
-        raise ctx.error(path, f"{q!r} must start with one of {', '.join(roots)}{_hint(parts[0], roots)}")
-    if parts[0] == "demag" and demag is None:
-        raise ctx.error(path, f"{q!r} needs a [demag] table")
+    if parts[0] not in QUANTITY_ROOTS:
+        raise ctx.error(path, f"{q!r} must start with one of {', '.join(QUANTITY_ROOTS)}"
+                              f"{_hint(parts[0], QUANTITY_ROOTS)}")
+    for root in ("demag", "forces"):
+        if parts[0] == root and getattr(known, root) is None:
+            raise ctx.error(path, f"{q!r} needs a [{root}] table")
     try:
         quantity = parse_quantity(q)
     except ValueError as e:
         raise ctx.error(path, str(e)) from None
     if quantity.root == "solver":
         return
-    known, what = {"bodies": (bodies, "no body"), "probes": (probes, "no probe"),
-                   "demag": (demag and demag.bodies, "[demag] bodies has no")}[quantity.root]
-    if quantity.name not in known:
-        raise ctx.error(path, f"{what} {quantity.name!r}{_hint(quantity.name, known)}")
-    if quantity.field == "fluxmetric" and demag.fluxmetric is None:
+    names, what = {"bodies": (known.bodies, "no body"), "probes": (known.probes, "no probe"),
+                   "demag": (known.demag and known.demag.bodies, "[demag] bodies has no"),
+                   "forces": (known.forces and known.forces.bodies, "[forces] bodies has no")}[quantity.root]
+    if quantity.name not in names:
+        raise ctx.error(path, f"{what} {quantity.name!r}{_hint(quantity.name, names)}")
+    if quantity.field == "fluxmetric" and known.demag.fluxmetric is None:
         raise ctx.error(path, f"{q!r} needs fluxmetric = \"x\"|\"y\"|\"z\" in [demag]")
-    if quantity.index is not None and quantity.index >= probes[quantity.name]:
-        raise ctx.error(path, f"{q!r}: probe {quantity.name!r} has {probes[quantity.name]} points, "
-                              f"indices 0 to {probes[quantity.name] - 1}")
+    count = known.probes.get(quantity.name)
+    if quantity.index is not None and quantity.index >= count:
+        raise ctx.error(path, f"{q!r}: probe {quantity.name!r} has {count} points, indices 0 to {count - 1}")
 
 
 # ---------------------------------------------------------------------------
@@ -577,6 +748,11 @@ class _Context:
         if positive and not value > 0:
             raise self.error(path, f"must be > 0 (got {value:g})")
         return float(value)
+
+    def boolean(self, value, path) -> bool:
+        if not isinstance(value, bool):
+            raise self.error(path, f"expected true or false, got {_type_name(value)}")
+        return value
 
     def integer(self, value, path, minimum) -> int:
         if isinstance(value, bool) or not isinstance(value, int):

@@ -456,6 +456,9 @@ def cmd_sweep(args) -> int:
     from .progress import Progress
     progress = Progress(True if args.progress else False if args.quiet else None)
     out = args.out or Path(args.case.stem + "_sweep")
+    if args.workers is not None and args.workers < 1:
+        print("volmag: error: --workers must be at least 1", file=sys.stderr)
+        return EXIT_BAD_INPUT
     try:
         plan = sw.plan(args.case, dict(sw.parse_set(s) for s in args.sets), args.mode)
     except (CaseError, sw.SweepError) as e:
