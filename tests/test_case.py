@@ -185,11 +185,15 @@ MALFORMED = [
         name = "a"
         """, SOURCE), "body", "array of tables"),
     ("magnetic body, nothing drives it", case(HEAD, BODY), "source", "no [[source]]"),
-    ("unsupported source type", case(HEAD, BODY, """\
+    ("key of another source type", case(HEAD, BODY, """\
         [[source]]
-        type = "loop"  # <-
+        type = "loop"
+        center = [0, 0, 0]
+        normal = [0, 0, 1]
         radius = 10
-        """), "source[0].type", "not supported in this version"),
+        current = 1
+        axis = [0, 0, 1]  # <-
+        """), "source[0].axis", "does not apply to a loop source"),
     ("misspelt source type", case(HEAD, BODY, """\
         [[source]]
         type = "unifrom"  # <-

@@ -24,7 +24,7 @@ def test_every_case_in_the_library_passes():
     comments at the top of each file)."""
     cases = sorted(p.name for p in (ROOT / "cases").glob("*.toml"))
     for name in ("drilled_sample.toml", "sphere.toml", "ellipsoid.toml", "steel_column.toml",
-                 "two_spheres.toml"):
+                 "two_spheres.toml", "coil_pair_column.toml", "ball_magnet_plate.toml"):
         assert name in cases
     r = subprocess.run([sys.executable, "-m", "volmag.cli", "check", ROOT / "cases"], capture_output=True,
                        text=True, timeout=600)
@@ -35,7 +35,8 @@ def test_every_case_in_the_library_passes():
         assert line.split()[1] == "pass", r.stdout
     assert f"{len(cases)} cases: {len(cases)} pass, 0 FAIL, 0 ERROR" in lines[-1]
     # the cases with a published formula or bound check every expectation they state
-    for name in ("sphere.toml", "ellipsoid.toml", "steel_column.toml", "two_spheres.toml"):
+    for name in ("sphere.toml", "ellipsoid.toml", "steel_column.toml", "two_spheres.toml",
+                 "coil_pair_column.toml", "ball_magnet_plate.toml"):
         (line,) = [ln for ln in lines if ln.startswith(name + " ")]
         passed, total = map(int, re.search(r"(\d+)/(\d+)", line).groups())
         assert passed == total >= 3, line

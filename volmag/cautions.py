@@ -28,6 +28,14 @@ def stray_field_cautions(max_B: float) -> tuple[str, ...]:
     all of them at or above the 0.5 mT line, none below it."""
     return STRAY_FIELD_CAUTIONS if max_B >= IMPLANT_LIMIT_T else ()
 
+
+def run_cautions(max_B: float, forces: bool) -> tuple[str, ...]:
+    """The cautions a run carries: all of them when the flux density at its
+    probes reaches `max_B` (T) >= 0.5 mT, or when it computed `forces` on
+    bodies (a field strong enough to pull on steel is worth a force figure);
+    none otherwise."""
+    return STRAY_FIELD_CAUTIONS if forces else stray_field_cautions(max_B)
+
 #: One-line form for figure captions.
 SHORT_CAUTION = ("Caution: 0.5 mT is the limit usually posted for implanted medical devices (common practice); "
                  "strong fields pull in loose ferromagnetic objects and magnetised parts can pinch. "

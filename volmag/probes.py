@@ -3,14 +3,18 @@
 A probe is a named, fixed set of points in model coordinates, with the
 parameters it was built from kept in `spec` so that a results file can record
 how the points came about and viewers can reshape the values on a grid.
+Points may also come from a CSV file (:func:`read_points_csv`); they are
+then an ordinary "points" probe whose spec names the file.
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 
-KINDS = ("points", "line", "plane", "box")
+KINDS = ("points", "line", "plane", "box", "sphere")
 
 
 def _vec3(v, what: str) -> np.ndarray:
@@ -57,8 +61,9 @@ class Probe:
 
     @property
     def grid_shape(self) -> tuple[int, ...]:
-        """Shape for reshaping per-point values: (n,) for points and lines,
-        (nu, nv) for planes, (nx, ny, nz) for boxes (C order, last index fastest)."""
+        """Shape for reshaping per-point values: (n,) for points, lines and
+        spheres, (nu, nv) for planes, (nx, ny, nz) for boxes (C order, last
+        index fastest)."""
         if self.kind in ("plane", "box"):
             return tuple(self.spec["n"])
         return (len(self.points),)
@@ -68,6 +73,13 @@ class Probe:
         """Probe at explicit points `pts` (n, 3), metres."""
         pts = np.asarray(pts, float).reshape(-1, 3)
         return cls(name, "points", pts, {"points": pts.tolist()})
+
+    @classmethod
+    def from_file(cls, name: str, path, metres_per_unit: float = 1.0) -> "Probe":
+        """Probe at the points of the CSV file `path` (see :func:`read_points_csv`),
+        coordinates in units of `metres_per_unit` m."""
+        pts = read_points_csv(path) * metres_per_unit
+        return cls(name, "points", pts, {"points_file": str(path)})
 
     @classmethod
     def line(cls, name: str, start, end, n: int) -> "Probe":
@@ -100,3 +112,47 @@ class Probe:
         axes = [np.linspace(lo[d], hi[d], n[d]) for d in range(3)]
         pts = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
         return cls(name, "box", pts, {"min": lo.tolist(), "max": hi.tolist(), "n": n})
+
+    @classmethod
+    def sphere(cls, name: str, center, radius: float, n: int) -> "Probe":
+        """`n` >= 2 points spread evenly over the sphere of `radius` (m) about
+        `center` (m): the Fibonacci lattice, point i at height
+        z_i = 1 - (2i + 1)/n and azimuth 2 pi i / phi^2 (phi the golden ratio;
+        Gonzalez, Math. Geosci. 42, 49 (2010) -- from memory). Each point
+        stands for an equal area 4 pi radius^2 / n."""
+        c = _vec3(center, "center")
+        if not (math.isfinite(radius) and radius > 0):
+            raise ValueError(f"radius must be > 0 (m), got {radius!r}")
+        n = _count(n, "n")
+        i = np.arange(n)
+        z = 1.0 - (2.0 * i + 1.0) / n
+        rho = np.sqrt(1.0 - z * z)
+        phi = 2.0 * math.pi * i * (2.0 - (1.0 + math.sqrt(5.0)) / 2.0)  # 2 - phi = 1/phi^2
+        unit = np.stack([rho * np.cos(phi), rho * np.sin(phi), z], axis=1)
+        return cls(name, "sphere", c + radius * unit, {"center": c.tolist(), "radius": float(radius), "n": n})
+
+
+def read_points_csv(path) -> np.ndarray:
+    """Points (n, 3) from a CSV file: three comma-separated numbers x, y, z a
+    line, in whatever unit the caller says; a first line of column names is
+    allowed, blank lines and lines starting with '#' are skipped.
+    ValueError names the line of a bad row."""
+    rows, first = [], True
+    for k, line in enumerate(Path(path).read_text(encoding="utf-8").splitlines(), 1):
+        text = line.strip()
+        if not text or text.startswith("#"):
+            continue
+        try:
+            values = [float(c) for c in text.split(",")]
+        except ValueError:
+            if first:  # column names
+                first = False
+                continue
+            raise ValueError(f"line {k}: expected three numbers x, y, z, got {text!r}") from None
+        first = False
+        if len(values) != 3 or not all(math.isfinite(v) for v in values):
+            raise ValueError(f"line {k}: expected three finite numbers x, y, z, got {text!r}")
+        rows.append(values)
+    if not rows:
+        raise ValueError("no points in the file")
+    return np.array(rows)

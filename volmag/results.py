@@ -3,16 +3,23 @@
 Layout (format version 1):
   root attributes  volmag_version, format_version, case_sha256, title,
                    length_unit, created (UTC, ISO 8601), converged,
-                   expect_passed, expect_total, and provenance_<item> for
-                   each item of :func:`volmag.run.provenance` (versions,
-                   BLAS, thread counts, mesh seed)
+                   expect_passed, expect_total, cautions (the safety
+                   wording of volmag.cautions the run carries, possibly
+                   empty), and provenance_<item> for each item of
+                   :func:`volmag.run.provenance` (versions, BLAS, thread
+                   counts, mesh seed)
   /case            the case text, verbatim
   /summary         the run summary as JSON text (what `volmag run --json` prints)
   /mesh            nodes (m), cells, body_id; attributes cell_type, body_names
                    hex meshes also cell_size (m), grid_index, grid_origin (m)
   /solution        M, H (A/m) and B (T) per element
   /demag/<body>    N (3x3), chi (3x3), apparent_susceptibility; attribute fluxmetric
-  /probes/<name>   points (m), H (A/m), B, B_applied (T); attributes kind, grid_shape
+  /probes/<name>   points (m), H (A/m), B, B_applied, dB (T), distortion_ppm
+                   (nan where B_applied = 0); attributes kind, grid_shape, the
+                   region metrics of volmag.distortion (nan where undefined)
+                   and, with a tolerance, tolerance_quantity, tolerance_max,
+                   tolerance_ok
+  /forces/<body>   F (N), torque (N m), about (m); group attribute method
   /solver          attributes method, unknowns, iterations, residual, seconds,
                    converged; datasets residual_history and, for nonlinear
                    materials, newton_history (residual, step, GMRES its, dM)
@@ -29,7 +36,8 @@ import h5py
 import numpy as np
 
 from . import __version__
-from .run import summary_json
+from .distortion import METRICS
+from .run import FORCE_METHOD, summary_json
 
 FORMAT_VERSION = 1
 _REQUIRED = ("case", "summary", "mesh", "solver")  # members every results file has
@@ -65,7 +73,8 @@ def _fill(f: h5py.File, run, version: str) -> None:
                    created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
                    converged=bool(summary["converged"]),
                    expect_passed=sum(bool(e["ok"]) for e in summary["expect"]),
-                   expect_total=len(summary["expect"]))
+                   expect_total=len(summary["expect"]),
+                   cautions=np.array(summary["cautions"], dtype=h5py.string_dtype()))
     for k, v in run.provenance.items():
         f.attrs[f"provenance_{k}"] = v
     f.create_dataset("case", data=case.text, dtype=h5py.string_dtype())
@@ -110,8 +119,20 @@ def _fill(f: h5py.File, run, version: str) -> None:
         g = p.create_group(name)
         if name in kinds:
             g.attrs.update(kind=kinds[name].kind, grid_shape=list(kinds[name].grid_shape))
-        for k in ("points", "H", "B", "B_applied"):
+        for k in ("points", "H", "B", "B_applied", "dB", "distortion_ppm"):
             g.create_dataset(k, data=pr[k])
+        entry = summary["probes"][name]
+        g.attrs.update({k: entry[k] if entry[k] is not None else np.full(3, np.nan) if n else np.nan
+                        for k, (n, _) in METRICS.items()})
+        if "tolerance" in entry:
+            t = entry["tolerance"]
+            g.attrs.update(tolerance_quantity=t["quantity"], tolerance_max=t["max"], tolerance_ok=t["ok"])
+    fg = f.create_group("forces")
+    fg.attrs["method"] = FORCE_METHOD
+    for name, res in summary["forces"].items():
+        g = fg.create_group(name)
+        for k in ("F", "torque", "about"):
+            g.create_dataset(k, data=np.asarray(res[k], float))
 
 
 def read_results(path) -> dict:

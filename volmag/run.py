@@ -10,9 +10,13 @@ grammar; :func:`lookup`, the one place that resolves them):
   demag.<body>.fluxmetric                    dimensionless
   probes.<probe>.<H|B|B_applied|dB>.<x|y|z>  A/m or T, mean over the probe's points
   probes.<probe>.<H|B|B_applied|dB>.<x|y|z>[i]   the same at point i (0-based)
-  probes.<probe>.max_abs_B                   T, largest |B| over the points
+  probes.<probe>.<max_abs_B|max_dB>          T, over the points
+  probes.<probe>.<max_distortion_ppm|homogeneity_ppm>   ppm, over the points
+  probes.<probe>.component_homogeneity_ppm.<x|y|z>      ppm, over the points
+  forces.<body>.<F|torque>.<x|y|z>           N, N m
 
-dB = B - B_applied is the field of the magnetised bodies alone.
+dB = B - B_applied is the field of the magnetised bodies alone; the region
+metrics are defined in :mod:`volmag.distortion`.
 """
 from __future__ import annotations
 
@@ -27,11 +31,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .cautions import run_cautions
+from .distortion import METRICS, probe_fields, region_metrics
+from .forces import ForceResult, body_forces
 from .post import demag_tensor
 from .progress import QUIET, Progress
 from .solve import Model, Solution, solve
-from .sources import total_source_field
-from .units import MU0
 
 _AXES = {"x": 0, "y": 1, "z": 2}
 
@@ -41,9 +46,16 @@ SOLVER_QUANTITIES = ("iterations", "residual", "unknowns", "seconds", "converged
 QUANTITY_FIELDS = {
     "bodies": {"volume": (0, "m^3"), "mean_M": (1, "A/m"), "moment": (1, "A m^2"), "max_abs_B": (0, "T")},
     "demag": {"N": (2, "1"), "chi": (2, "1"), "apparent_susceptibility": (2, "1"), "fluxmetric": (0, "1")},
-    "probes": {"H": (1, "A/m"), "B": (1, "T"), "B_applied": (1, "T"), "dB": (1, "T"), "max_abs_B": (0, "T")},
+    "probes": {"H": (1, "A/m"), "B": (1, "T"), "B_applied": (1, "T"), "dB": (1, "T"), **METRICS},
+    "forces": {"F": (1, "N"), "torque": (1, "N m")},
 }
 QUANTITY_ROOTS = ("solver",) + tuple(QUANTITY_FIELDS)
+#: Probe results that exist at each point (and so take a point index [i]).
+PROBE_POINT_FIELDS = ("H", "B", "B_applied", "dB")
+#: How forces and torques are computed (stored with them in results files).
+FORCE_METHOD = ("charge model: F = mu0 sum_f sigma_f int_f H_other dS over the body's charged element faces, "
+                "H_other the field of the sources and of the other bodies (Furlani, Permanent Magnet and "
+                "Electromechanical Devices, Academic Press 2001, ch. 3)")
 _COMPONENT = re.compile(r"^([xyz]{1,2})(?:\[(\d+)\])?$")
 
 
@@ -57,6 +69,7 @@ class Run:
     probes: dict
     provenance: dict
     expect: list = field(default_factory=list)
+    forces: dict = field(default_factory=dict)  # body name -> ForceResult
 
     @property
     def converged(self) -> bool:
@@ -94,22 +107,37 @@ class Run:
             if d.fluxmetric is not None:
                 entry["fluxmetric"] = {"axis": d.fluxmetric_axis, "N": d.fluxmetric}
             demag[name] = entry
-        probes = {name: {"points": len(p["points"]),
-                         **{k: v.mean(axis=0).tolist() for k, v in probe_values(p).items()},
-                         "max_abs_B": float(np.linalg.norm(p["B"], axis=1).max())}
-                  for name, p in self.probes.items()}
+        probes = {name: self.probe_summary(name) for name in self.probes}
+        forces = {name: {"F": f.force.tolist(), "torque": f.torque.tolist(), "about": f.about.tolist()}
+                  for name, f in self.forces.items()}
+        peak = max((p["max_abs_B"] or 0.0 for p in probes.values()), default=0.0)
         return {"title": self.case.title, "case_sha256": self.case.sha256, "converged": self.converged,
                 "solver": self.solver_summary(),
                 "mesh": [dict(s.as_dict(), summary=s.summary()) for s in self.model.mesh_stats], "bodies": bodies,
-                "demag": demag, "probes": probes, "expect": self.expect, "warnings": self.warnings(),
+                "demag": demag, "probes": probes, "forces": forces, "expect": self.expect,
+                "cautions": list(run_cautions(peak, bool(self.forces))), "warnings": self.warnings(),
                 "provenance": self.provenance}
 
+    def probe_summary(self, name: str) -> dict:
+        """One probe in the summary: kind, number of points, mean H, B,
+        B_applied, dB, the region metrics and, if the case sets one, the
+        tolerance with its outcome."""
+        p = self.probes[name]
+        kind = {q.name: q.kind for q in self.case.probes}.get(name)
+        out = {"kind": kind, "points": len(p["points"]),
+               **{k: v.mean(axis=0).tolist() for k, v in probe_values(p).items()}, **region_metrics(p)}
+        tol = self.case.tolerances.get(name)
+        if tol is not None:
+            (row,) = check_expectations({"probes": {name: out}}, [tol])
+            out["tolerance"] = {"quantity": tol.quantity.split(".", 2)[2], "max": tol.value,
+                                **{k: row[k] for k in ("got", "ok", "error") if k in row}}
+        return out
+
     def warnings(self) -> list[str]:
-        """Plain-language warnings about the solved state (magnets past their knee)."""
+        """Plain-language warnings about the solved state (magnets past their
+        knee) and about probe points where the field is not finite."""
         out = []
-        if self.solution is None:
-            return out
-        for i, b in enumerate(self.model.bodies):
+        for i, b in enumerate(self.model.bodies if self.solution is not None else ()):
             if getattr(b.material, "knee_field", None) is None:
                 continue
             own = self.model.mesh.body_id == i
@@ -119,6 +147,11 @@ class Run:
                 out.append(f"body {b.name}: the field opposing the remanence exceeds the knee field "
                            f"({b.material.knee_field:g} A/m) in {100 * share:.1f} % of its volume; "
                            "irreversible demagnetisation is likely there")
+        for name, p in self.probes.items():
+            bad = int((~np.all(np.isfinite(p["B"]), axis=1)).sum())
+            if bad:
+                out.append(f"probe {name}: the field is not finite at {bad} of its points (on a current "
+                           "filament?); they are left out of its metrics")
         return out
 
 
@@ -184,8 +217,9 @@ def parse_quantity(text: str) -> Quantity:
     if m is None or len(m.group(1)) != letters:
         raise ValueError(f"{text!r}: {fname} needs a component ({want})"
                          + (", optionally with a point index such as z[3]" if root == "probes" else ""))
-    if m.group(2) is not None and root != "probes":
-        raise ValueError(f"{text!r}: only probe values take a point index [i]")
+    if m.group(2) is not None and fname not in PROBE_POINT_FIELDS:
+        raise ValueError(f"{text!r}: only probe values at points ({', '.join(PROBE_POINT_FIELDS)}) "
+                         "take a point index [i]")
     index = None if m.group(2) is None else int(m.group(2))
     return Quantity(root, name, fname, tuple(_AXES[c] for c in m.group(1)), index)
 
@@ -201,9 +235,10 @@ def lookup(summary: dict, quantity: str, probes: dict | None = None) -> float:
         raise KeyError(str(e)) from None
     if q.root == "solver":
         return float(summary["solver"][q.field])
-    entry = summary[q.root].get(q.name)
+    entry = summary.get(q.root, {}).get(q.name)
     if entry is None:
-        what = {"bodies": "body", "probes": "probe", "demag": "demagnetising tensor of"}[q.root]
+        what = {"bodies": "body", "probes": "probe", "demag": "demagnetising tensor of",
+                "forces": "force on"}[q.root]
         raise KeyError(f"{quantity}: no {what} {q.name!r} in the results")
     if q.index is not None:
         if probes is None or q.name not in probes:
@@ -217,6 +252,10 @@ def lookup(summary: dict, quantity: str, probes: dict | None = None) -> float:
                "fluxmetric": " (ask for it with fluxmetric = \"x\"|\"y\"|\"z\" in [demag])"}.get(q.field, "")
         raise KeyError(f"{quantity}: no {q.field} in the results{why}")
     node = entry[q.field]
+    if node is None:  # a probe metric without meaning here
+        why = ("the applied field vanishes at a point of the probe" if q.field == "max_distortion_ppm"
+               else "the field is zero or not finite over the probe")
+        raise KeyError(f"{quantity}: not defined ({why})")
     if q.field == "fluxmetric":
         node = node["N"]
     if isinstance(node, (int, float)) and q.component:  # a scalar chi stands for chi times identity
@@ -229,16 +268,18 @@ def lookup(summary: dict, quantity: str, probes: dict | None = None) -> float:
 def check_expectations(summary: dict, expects, probes: dict | None = None) -> list:
     """Outcome of each expectation (:class:`volmag.case.Expectation`): a dict
     with quantity, value, got, ok, rel_tol, abs_tol, the tolerance applied
-    (|got - value| <= max(abs_tol, rel_tol |value|)), the case-file line and,
-    when the quantity could not be resolved, error."""
+    (|got - value| <= max(abs_tol, rel_tol |value|); 0 for a bound), bound
+    ("min", "max" or None: got >= value, got <= value), the case-file line
+    and, when the quantity could not be resolved, error."""
     out = []
     for e in expects:
-        tol = max(e.abs_tol or 0.0, (e.rel_tol or 0.0) * abs(e.value))
+        bound = e.bound
+        tol = 0.0 if bound else max(e.abs_tol or 0.0, (e.rel_tol or 0.0) * abs(e.value))
         row = {"quantity": e.quantity, "value": e.value, "got": None, "ok": False, "rel_tol": e.rel_tol,
-               "abs_tol": e.abs_tol, "tolerance": tol, "line": e.line}
+               "abs_tol": e.abs_tol, "tolerance": tol, "bound": bound, "line": e.line}
         try:
             row["got"] = got = lookup(summary, e.quantity, probes)
-            row["ok"] = bool(abs(got - e.value) <= tol)
+            row["ok"] = bool({"max": got <= e.value, "min": got >= e.value}.get(bound, abs(got - e.value) <= tol))
         except KeyError as err:
             row["error"] = err.args[0]
         out.append(row)
@@ -306,13 +347,24 @@ def run_case(case, progress: Progress = QUIET) -> Run:
             demag[name] = demag_tensor(model, name, case.solver, case.demag.fluxmetric, progress)
     probes = {}
     for p in case.probes:
-        pts = np.asarray(p.points, float)
-        Ha = total_source_field(case.sources, pts)
-        if solution is not None:
-            H, B = solution.field(pts)
-        else:
-            H, B = Ha, MU0 * Ha
-        probes[p.name] = {"points": pts, "H": H, "B": B, "B_applied": MU0 * Ha}
-    run = Run(case, model, solution, demag, probes, provenance())
+        progress(f"probe {p.name}: {len(p.points)} points")
+        probes[p.name] = probe_fields(p.points, case.sources, solution)
+    forces = {}
+    request = case.forces
+    for name in request.bodies if request is not None else ():
+        progress(f"force on {name}")
+        forces[name] = (body_forces(solution, name, request.about) if solution is not None
+                        else _no_force(model, name, request.about))
+    run = Run(case, model, solution, demag, probes, provenance(), forces=forces)
     run.expect = check_expectations(run.summary(), case.expects, probes)
     return run
+
+
+def _no_force(model: Model, body: str, about) -> ForceResult:
+    """Force on a body when nothing is magnetised: zero, about its centroid
+    (m) unless `about` says otherwise."""
+    if about is None:
+        own = model.mesh.body_id == model.body_index(body)
+        vol = model.mesh.volumes()[own]
+        about = vol @ model.mesh.centroids()[own] / vol.sum()
+    return ForceResult(body, np.zeros(3), np.zeros(3), np.asarray(about, float))
