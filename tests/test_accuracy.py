@@ -161,3 +161,22 @@ def test_fluxmetric_equals_magnetometric_for_ellipsoid(chi):
     ref = ellipsoid_demag_factors(*axes)[0]
     assert abs(res.fluxmetric / ref - 1) < 5e-3, (res.fluxmetric, ref)
     assert abs(res.N[0, 0] / ref - 1) < 0.01
+
+
+def test_high_chi_block_near_a_dipole_tets_agree_with_hexes():
+    """Steel (chi = 1000) in a strongly non-uniform field: tets and hexes must
+    agree (common practice: no closed form). Guards the projection of the
+    applied field onto discrete gradients, without which the tetrahedral
+    moment is 12 % high and the pull 13 times too large."""
+    from volmag.forces import body_forces
+    from volmag.sources import PointDipole
+    src = [PointDipole((0.0, 0.0, -0.04), (0.0, 0.0, 1.0))]
+    out = {}
+    for element, size, surface in (("tet", 0.02, 0.01), ("hex", 0.0067, None)):
+        body = vm.Body("s", vm.Box((0.1, 0.1, 0.02)), vm.LinearMaterial("m", 1000.0),
+                       mesh=vm.MeshSpec(element, size, surface))
+        sol = vm.solve(vm.Model.build([body]), src)
+        out[element] = (sol.moment()[2], body_forces(sol, "s").force[2])
+    (mt, ft), (mh, fh) = out["tet"], out["hex"]
+    assert abs(mt / mh - 1) < 0.03, out
+    assert 0.8 < ft / fh < 1.2, out

@@ -26,7 +26,7 @@ import scipy.linalg as sla
 from . import kernels, operators
 from .krylov import gmres
 from .progress import QUIET
-from .solve import SolverError, Solution, available_memory
+from .solve import SolverError, Solution, _all_uniform, available_memory
 from .sources import total_source_field
 
 
@@ -109,6 +109,8 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
     mesh = model.mesh
     Hs = operators.element_average(mesh, lambda p: total_source_field(sources, p))
     problem = (_TetProblem if mesh.cell_type == "tet" else _HexProblem)(model, Hs, progress)
+    if mesh.cell_type == "tet" and not _all_uniform(sources):
+        problem.Hs = Hs = operators.gradient_projection(mesh, problem.topo, Hs)
     law = ElementLaw(model)
     x = np.zeros(problem.n)
     history, best = [], None

@@ -209,8 +209,13 @@ class DenseSystem:
         return sla.lu_solve(self.lu, r.astype(self.lu[0].dtype), check_finite=False).astype(float)
 
     def source_field(self, sources) -> np.ndarray:
-        """Applied field averaged over each element (ne, 3), A/m."""
-        return operators.element_average(self.model.mesh, lambda p: total_source_field(sources, p))
+        """Applied field averaged over each element (ne, 3), A/m; for tets,
+        projected onto gradients of the P1 potential (see
+        operators.gradient_projection)."""
+        Hs = operators.element_average(self.model.mesh, lambda p: total_source_field(sources, p))
+        if self.model.mesh.cell_type == "tet" and not _all_uniform(sources):
+            Hs = operators.gradient_projection(self.model.mesh, self.topo, Hs)
+        return Hs
 
     def rhs(self, source_fields) -> np.ndarray:
         """Right-hand sides (unknowns, k) for k element-averaged applied fields.
@@ -275,6 +280,11 @@ class DenseSystem:
             return np.einsum("eij,ej->ei", self.chi, H) + self.model.element_remanence(), H
         M = x.reshape(-1, 3)
         return M, Hs + (self.K @ x).reshape(-1, 3)
+
+
+def _all_uniform(sources) -> bool:
+    from .sources import UniformField
+    return all(isinstance(s, UniformField) for s in sources)
 
 
 def _identity_minus_chi_K(chi: np.ndarray, K: np.ndarray, rows: int = 256) -> np.ndarray:
