@@ -14,6 +14,7 @@ evaluated exactly for it.
 CAUTION: forces between magnets and steel can be large and sudden: pinching,
 crushing and flying-object hazards; people with implanted medical devices
 must keep away from strong fields. Follow local codes and licensed practice.
+The wording shown to users lives in volmag.cautions.
 """
 from __future__ import annotations
 
@@ -25,10 +26,6 @@ from . import kernels
 from .post import charged_faces
 from .sources import total_source_field
 from .units import MU0
-
-CAUTION = ("Forces on steel near magnets or coils can be large and sudden: pinching, crushing and "
-           "flying ferromagnetic objects; people with implanted medical devices must stay clear of "
-           "strong fields. Check against local codes and licensed practice.")
 
 
 @dataclass(frozen=True)
