@@ -16,9 +16,10 @@ def test_refuses_dense_operator_over_memory_limit():
         vm.solve(model, [vm.UniformField((0, 0, 1.0))], vm.SolverOptions(memory_limit=1e5))
 
 
-def test_unavailable_method_is_refused():
-    with pytest.raises(vm.SolverError, match="not available"):
-        vm.solve(sphere_model(), [vm.UniformField((0, 0, 1.0))], vm.SolverOptions(method="fmm"))
+def test_method_for_other_element_kind_is_refused():
+    hexes = vm.Model.build([vm.Body("s", vm.Sphere(1.0), vm.LinearMaterial("m", 10.0), mesh=vm.MeshSpec("hex", 0.5))])
+    with pytest.raises(vm.SolverError, match="tetrahedral meshes only"):
+        vm.solve(hexes, [vm.UniformField((0, 0, 1.0))], vm.SolverOptions(method="fmm"))
 
 
 def test_history_records_true_residual():

@@ -86,7 +86,7 @@ KEYS = {
     "probe.box": ("min", "max", "n"),
     "probe.sphere": ("center", "radius", "n"),
     "probe.tolerance": ("quantity", "max"),
-    "solver": ("method", "tolerance", "max_iterations"),
+    "solver": ("method", "tolerance", "max_iterations", "precision", "memory_limit_gib"),
     "demag": ("bodies", "fluxmetric"),
     "forces": ("bodies", "about"),
     "expect": ("quantity", "value", "rel_tol", "abs_tol", "min", "max"),
@@ -550,7 +550,12 @@ def _solver(ctx, tab) -> SolverOptions:
             raise ctx.error(path + ("tolerance",), f"must be below 0.1 (got {tol:g})")
     iters = ctx.integer(tab["max_iterations"], path + ("max_iterations",), minimum=1) \
         if "max_iterations" in tab else d.max_iterations
-    return SolverOptions(method=method, tolerance=tol, max_iterations=iters)
+    precision = ctx.string(tab, path, "precision", choices=("double", "single"), default=d.precision)
+    limit = d.memory_limit
+    if "memory_limit_gib" in tab:
+        limit = ctx.number(tab["memory_limit_gib"], path + ("memory_limit_gib",), positive=True) * 2**30
+    return SolverOptions(method=method, tolerance=tol, max_iterations=iters, precision=precision,
+                         memory_limit=limit)
 
 
 def _demag(ctx, tab, names) -> DemagRequest:

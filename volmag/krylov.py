@@ -36,10 +36,10 @@ def gmres(matvec, b: np.ndarray, precond=lambda r: r, x0=None, tol=1e-10, maxite
     while history[-1] > tol and it < maxiter:
         beta = np.linalg.norm(r)
         m = min(restart, maxiter - it)
-        V = np.zeros((m + 1, len(b)))
-        Z = np.zeros((m, len(b)))
-        Hs = np.zeros((m + 1, m))
+        # np.zeros maps untouched pages lazily: memory follows the iterations done
+        V, Z = np.zeros((m + 1, len(b))), np.zeros((m, len(b)))
         V[0] = r / beta
+        Hs = np.zeros((m + 1, m))
         g = np.zeros(m + 1)
         g[0] = beta
         cs, sn = np.zeros(m), np.zeros(m)
@@ -47,9 +47,15 @@ def gmres(matvec, b: np.ndarray, precond=lambda r: r, x0=None, tol=1e-10, maxite
         for k in range(m):
             Z[k] = precond(V[k])
             w = matvec(Z[k])
-            for j in range(k + 1):                       # modified Gram-Schmidt
-                Hs[j, k] = V[j] @ w
-                w = w - Hs[j, k] * V[j]
+            # classical Gram-Schmidt applied twice: as stable as modified
+            # Gram-Schmidt, in matrix-vector (BLAS) operations (Giraud et al.,
+            # Numer. Math. 2005)
+            Vk = V[:k + 1]
+            h = Vk @ w
+            w = w - h @ Vk
+            h2 = Vk @ w
+            w -= h2 @ Vk
+            Hs[:k + 1, k] = h + h2
             Hs[k + 1, k] = np.linalg.norm(w)
             if Hs[k + 1, k] > 0:
                 V[k + 1] = w / Hs[k + 1, k]
@@ -68,7 +74,7 @@ def gmres(matvec, b: np.ndarray, precond=lambda r: r, x0=None, tol=1e-10, maxite
             if history[-1] <= tol or Hs[k, k] == 0:
                 break
         y = np.linalg.solve(np.triu(Hs[:k + 1, :k + 1]), g[:k + 1])
-        x = x + Z[:k + 1].T @ y
+        x = x + y @ Z[:k + 1]
         r = b - matvec(x)
         history[-1] = np.linalg.norm(r) / bnorm       # true residual at restart
         if len(history) > 3 and history[-1] >= history[-2 - k] * 0.999:

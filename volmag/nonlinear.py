@@ -26,7 +26,8 @@ import scipy.linalg as sla
 from . import kernels, operators
 from .krylov import gmres
 from .progress import QUIET
-from .solve import SolverError, Solution, _all_uniform, available_memory
+from .methods import available_memory
+from .solve import SolverError, Solution, _all_uniform
 from .sources import total_source_field
 
 

@@ -104,7 +104,7 @@ def demag_tensor(model, body: str, options=None, fluxmetric_axis: str | None = N
     applied fields along x, y, z give X_app from <M>; N = X_app^-1 - chi^-1
     (e.g. Chen, Brug & Goldfarb, IEEE Trans. Magn. 1991)."""
     from .progress import QUIET
-    from .solve import DenseSystem, SolverOptions
+    from .solve import SolverOptions, make_system
     from .sources import UniformField
     progress = progress or QUIET
     sub = model.only(body)
@@ -113,7 +113,7 @@ def demag_tensor(model, body: str, options=None, fluxmetric_axis: str | None = N
         N = _uniform_demag(sub)
         flux = _fluxmetric_uniform(sub, fluxmetric_axis) if fluxmetric_axis else None
         return DemagResult(body, chi, N, None, flux, fluxmetric_axis)
-    system = DenseSystem(sub, options or SolverOptions(), progress)
+    system = make_system(sub, options or SolverOptions(), progress)
     solutions = system.solve_many([[UniformField(tuple(np.eye(3)[j]))] for j in range(3)])
     for s in solutions:
         if not s.converged:
@@ -131,10 +131,9 @@ def _uniform_demag(model) -> np.ndarray:
     """N = -<H> of a uniform unit M, consistent with the solver's discretisation."""
     mesh = model.mesh
     vol = mesh.volumes()
-    if mesh.cell_type == "hex":
-        K = operators.grid_tensor_blocks(mesh.grid_index, mesh.cell_size)
-        n = mesh.n_cells
-        return -(vol[:, None, None] * K.reshape(n, 3, n, 3).sum(axis=2)).sum(axis=0) / vol.sum()
+    if mesh.cell_type == "hex":      # equal cells: the FFT product, O(n log n), exact to rounding
+        from .fft import uniform_demag
+        return uniform_demag(mesh.grid_index, mesh.cell_size)
     # N[:, j] = (1/V) surface-integral of phi_j n dS (Gauss' theorem on <H>), with
     # phi_j the exact potential of the boundary charges n_j, integrated by a
     # degree-5 rule on each boundary triangle: exact N of the meshed polyhedron.
