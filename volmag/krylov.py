@@ -21,9 +21,10 @@ class KrylovResult:
     history: list[float] = field(default_factory=list)
 
 
-def gmres(matvec, b: np.ndarray, precond=lambda r: r, x0=None, tol=1e-10, maxiter=500,
+def gmres(matvec, b: np.ndarray, precond=None, x0=None, tol=1e-10, maxiter=500,
           restart=60, callback=None) -> KrylovResult:
-    """Solve A x = b. `matvec(x)` -> A x, `precond(r)` -> approx A^-1 r.
+    """Solve A x = b. `matvec(x)` -> A x, `precond(r)` -> approx A^-1 r (None:
+    no preconditioner, and no second basis is stored).
     `callback(iteration, relative_residual)` is called after every step."""
     b = np.asarray(b, float)
     bnorm = np.linalg.norm(b)
@@ -37,7 +38,8 @@ def gmres(matvec, b: np.ndarray, precond=lambda r: r, x0=None, tol=1e-10, maxite
         beta = np.linalg.norm(r)
         m = min(restart, maxiter - it)
         # np.zeros maps untouched pages lazily: memory follows the iterations done
-        V, Z = np.zeros((m + 1, len(b))), np.zeros((m, len(b)))
+        V = np.zeros((m + 1, len(b)))
+        Z = V if precond is None else np.zeros((m, len(b)))
         V[0] = r / beta
         Hs = np.zeros((m + 1, m))
         g = np.zeros(m + 1)
@@ -45,7 +47,8 @@ def gmres(matvec, b: np.ndarray, precond=lambda r: r, x0=None, tol=1e-10, maxite
         cs, sn = np.zeros(m), np.zeros(m)
         k = 0
         for k in range(m):
-            Z[k] = precond(V[k])
+            if precond is not None:
+                Z[k] = precond(V[k])
             w = matvec(Z[k])
             # classical Gram-Schmidt applied twice: as stable as modified
             # Gram-Schmidt, in matrix-vector (BLAS) operations (Giraud et al.,

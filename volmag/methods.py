@@ -36,9 +36,11 @@ _TET_PAIR_SECONDS = 55e-9
 _HEX_ENTRY_SECONDS = 4e-9
 #: Seconds per padded grid point and log2 of the grid size, for one FFT product.
 _FFT_POINT_SECONDS = 2.2e-9
-#: Fine-grid products per iteration of the preconditioned hex solve, and a
-#: typical iteration count (chi up to 1e5, measured on voxel spheres and cubes).
-_FFT_PRODUCTS_PER_ITERATION, _FFT_ITERATIONS = 5, 35
+#: Fine-grid products per iteration and iterations at high chi: with the
+#: multilevel preconditioner (up to its cell limit) and without (products
+#: counted with the orthogonalisation against a long basis); measured on voxel
+#: spheres at chi = 1000.
+_FFT_WORK_MULTILEVEL, _FFT_WORK_PLAIN = 5 * 35, 1.5 * 250
 
 #: Fixed cost of the FFT path: kernel transform, multilevel set-up, dispatch.
 _FFT_SETUP_SECONDS = 0.5
@@ -138,17 +140,19 @@ def _dense_tet(mesh) -> Estimate:
 def _fft_hex(mesh, precision: str) -> Estimate:
     from . import fft
     from .multilevel import COARSE_CELLS
+    from .solve import MULTILEVEL_MAX_CELLS, PLAIN_RESTART
     shape = fft.grid_shape(mesh.grid_index)
     m = mesh.n_cells
     L = float(np.prod(fft.padded_shape(shape)))
     product = _FFT_POINT_SECONDS * L * math.log2(max(L, 2.0))
     coarse = 3.0 * min(m, COARSE_CELLS)     # unknowns of the preconditioner's dense coarsest level
+    multilevel = m <= MULTILEVEL_MAX_CELLS
     seconds = _FFT_SETUP_SECONDS + _FACTOR_SECONDS_PER_FLOP * coarse ** 3 / 1.5 + 20 * product \
-        + _FFT_ITERATIONS * _FFT_PRODUCTS_PER_ITERATION * product
+        + (_FFT_WORK_MULTILEVEL if multilevel else _FFT_WORK_PLAIN) * product
     # operator, the preconditioner's coarse levels and smoothers (~ a third of
     # another operator plus 200 B a cell), Krylov basis, fields
-    bytes_ = 1.4 * fft.memory_estimate(shape, m, precision) + 200.0 * m \
-        + KRYLOV_BYTES_PER_UNKNOWN * 3 * m + 3 * 8 * 9 * m
+    basis = KRYLOV_BYTES_PER_UNKNOWN if multilevel else 8.0 * PLAIN_RESTART
+    bytes_ = 1.4 * fft.memory_estimate(shape, m, precision) + 200.0 * m + basis * 3 * m + 3 * 8 * 9 * m
     return Estimate("fft", bytes_, seconds)
 
 

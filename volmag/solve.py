@@ -318,7 +318,7 @@ class GridFFTSystem(LinearSystem):
         self.assembly_seconds = time.perf_counter() - t0
         t0 = time.perf_counter()
         self.P = None
-        if np.abs(self.chi).max() > MULTILEVEL_CHI:
+        if np.abs(self.chi).max() > MULTILEVEL_CHI and mesh.n_cells <= MULTILEVEL_MAX_CELLS:
             self.P = MultilevelPreconditioner(mesh.grid_index, mesh.cell_size, self.chi, options.precision,
                                               fine_op=self.K)
             progress(f"multilevel preconditioner: levels {self.P.describe()} cells, "
@@ -350,14 +350,27 @@ class GridFFTSystem(LinearSystem):
     def _krylov(self, b):
         opts = self.options
         tol = max(opts.tolerance, SINGLE_TOLERANCE) if opts.precision == "single" else opts.tolerance
-        result = gmres(self.matvec, b, self.precond, tol=tol, maxiter=opts.max_iterations, callback=self._report)
+        if self.P is None:
+            result = gmres(self.matvec, b, None, tol=tol, maxiter=opts.max_iterations, restart=PLAIN_RESTART,
+                           callback=self._report)
+        else:
+            result = gmres(self.matvec, b, self.precond, tol=tol, maxiter=opts.max_iterations,
+                           callback=self._report)
         return result.x, result, list(result.history)
 
+
+#: Restart length of unpreconditioned GMRES: the basis is the only big array
+#: (8 bytes x unknowns x restart), and short restarts cost many iterations at
+#: high chi.
+PLAIN_RESTART = 150
 
 #: Above this susceptibility the hex FFT solve uses the multilevel
 #: preconditioner; below, plain GMRES is faster (measured on voxel spheres:
 #: chi = 10 needs 27 plain iterations, 16 preconditioned ones at ~5x the cost).
 MULTILEVEL_CHI = 30.0
+#: ... and up to this many cells, where it is measured to work (see the
+#: limits in :mod:`volmag.multilevel`); beyond, plain GMRES with a long restart.
+MULTILEVEL_MAX_CELLS = 150_000
 
 #: Residual a single-precision fast operator can reach reliably.
 SINGLE_TOLERANCE = 1e-6
