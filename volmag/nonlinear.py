@@ -83,6 +83,9 @@ class _TetProblem:
         A[np.diag_indices(self.n)] += 1.0
         return A
 
+    def linear_step(self, JM):
+        return _dense_step(self.jacobian(JM))
+
 
 class _HexProblem:
     def __init__(self, model, Hs, progress):
@@ -100,6 +103,58 @@ class _HexProblem:
         from .solve import _identity_minus_chi_K
         return _identity_minus_chi_K(JM, self.K)
 
+    def linear_step(self, JM):
+        return _dense_step(self.jacobian(JM))
+
+
+class _HexFFTProblem(_HexProblem):
+    """Hexahedral grid, matrix-free: the FFT product and, for the Newton
+    steps, the multilevel preconditioner built on the differential
+    susceptibility (same rules as the linear FFT solve)."""
+
+    def __init__(self, model, Hs, options, progress):
+        from .fft import GridOperator
+        mesh = model.mesh
+        self.K = GridOperator(mesh.grid_index, mesh.cell_size, options.precision)
+        progress(f"FFT operator: {mesh.n_cells} cells, padded grid {'x'.join(map(str, self.K.padded))}")
+        self.Hs, self.n, self.mesh, self.options = Hs, 3 * mesh.n_cells, mesh, options
+
+    def field(self, x):
+        return self.Hs + self.K(x.reshape(-1, 3))
+
+    def linear_step(self, JM):
+        from .multilevel import MultilevelPreconditioner
+        from .solve import MULTILEVEL_CHI, MULTILEVEL_MAX_CELLS
+        P = None
+        if np.abs(JM).max() > MULTILEVEL_CHI and self.mesh.n_cells <= MULTILEVEL_MAX_CELLS:
+            P = MultilevelPreconditioner(self.mesh.grid_index, self.mesh.cell_size, JM, self.options.precision,
+                                         fine_op=self.K)
+        return (lambda v: v - np.einsum("eij,ej->ei", JM, self.K(v.reshape(-1, 3))).ravel()), P
+
+
+def _dense_step(A):
+    """(matvec, preconditioner) of a dense Jacobian: float32 LU."""
+    lu = sla.lu_factor(A.astype(np.float32), check_finite=False)
+
+    def precond(r):
+        return sla.lu_solve(lu, r.astype(np.float32), check_finite=False).astype(float)
+
+    return (lambda v: A @ v), precond
+
+
+def _method(model, options, progress) -> str:
+    """Dense, or FFT for hexahedral grids (the fast tetrahedral operators are
+    linear-only in this version)."""
+    if model.mesh.cell_type == "tet":
+        if options.method in ("fft", "fmm"):
+            raise SolverError(f"solver method {options.method!r} is not available for nonlinear materials on "
+                              "tetrahedra; use 'dense' (or 'auto'), or hexahedral cells with 'fft'")
+        return "dense"
+    from .methods import choose
+    method, why = choose(model.mesh, options)
+    progress(f"method {method}: {why}")
+    return method
+
 
 def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60,
                     m_tolerance: float = 1e-6) -> Solution:
@@ -109,7 +164,13 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
     t0 = time.perf_counter()
     mesh = model.mesh
     Hs = operators.element_average(mesh, lambda p: total_source_field(sources, p))
-    problem = (_TetProblem if mesh.cell_type == "tet" else _HexProblem)(model, Hs, progress)
+    method = _method(model, options, progress)
+    if mesh.cell_type == "tet":
+        problem = _TetProblem(model, Hs, progress)
+    elif method == "fft":
+        problem = _HexFFTProblem(model, Hs, options, progress)
+    else:
+        problem = _HexProblem(model, Hs, progress)
     if mesh.cell_type == "tet" and not _all_uniform(sources):
         problem.Hs = Hs = operators.gradient_projection(mesh, problem.topo, Hs)
     law = ElementLaw(model)
@@ -135,14 +196,9 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
                 break
         if step == max_steps:
             break
-        A = problem.jacobian(law.jacobian(H))
-        lu = sla.lu_factor(A.astype(np.float32), check_finite=False)
-
-        def precond(r):
-            return sla.lu_solve(lu, r.astype(np.float32), check_finite=False).astype(float)
-
-        lin = gmres(lambda v: A @ v, -R, precond, x0=dx_prev, tol=min(1e-3, 0.1 * res) if step else 1e-6,
-                    maxiter=200)
+        matvec, precond = problem.linear_step(law.jacobian(H))
+        lin = gmres(matvec, -R, precond, x0=dx_prev, tol=min(1e-3, 0.1 * res) if step else 1e-6,
+                    maxiter=200, restart=60 if precond is not None else 150)
         dx, t = lin.x, 1.0
         rnorm = np.linalg.norm(R)
         while t > 1 / 64:
@@ -163,5 +219,5 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
     seconds = time.perf_counter() - t0
     newton = [(h["residual"], h["step"], h["linear_iterations"], h["dM"]) for h in history]
     return Solution(model, tuple(sources), M, H, x if mesh.cell_type == "tet" else None, converged,
-                    len(history), float(res), tuple(h["residual"] for h in history), "dense", problem.n,
+                    len(history), float(res), tuple(h["residual"] for h in history), method, problem.n,
                     seconds, {"newton_history": newton, "nonlinear": True})
