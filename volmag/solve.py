@@ -350,13 +350,19 @@ class GridFFTSystem(LinearSystem):
     def _krylov(self, b):
         opts = self.options
         tol = max(opts.tolerance, SINGLE_TOLERANCE) if opts.precision == "single" else opts.tolerance
-        if self.P is None:
-            result = gmres(self.matvec, b, None, tol=tol, maxiter=opts.max_iterations, restart=PLAIN_RESTART,
+        history = []
+        if self.P is not None:
+            result = gmres(self.matvec, b, self.precond, tol=tol, maxiter=min(opts.max_iterations, 60),
                            callback=self._report)
-        else:
-            result = gmres(self.matvec, b, self.precond, tol=tol, maxiter=opts.max_iterations,
-                           callback=self._report)
-        return result.x, result, list(result.history)
+            history = list(result.history)
+            if result.converged or opts.max_iterations <= 60:
+                return result.x, result, history
+            self.progress("multilevel preconditioner stalled; continuing without it")
+        result = gmres(self.matvec, b, None, x0=result.x if history else None, tol=tol,
+                       maxiter=opts.max_iterations - max(len(history) - 1, 0), restart=PLAIN_RESTART,
+                       callback=self._report)
+        history += list(result.history[1:] if history else result.history)
+        return result.x, result, history
 
 
 #: Restart length of unpreconditioned GMRES: the basis is the only big array
@@ -370,7 +376,7 @@ PLAIN_RESTART = 150
 MULTILEVEL_CHI = 30.0
 #: ... and up to this many cells, where it is measured to work (see the
 #: limits in :mod:`volmag.multilevel`); beyond, plain GMRES with a long restart.
-MULTILEVEL_MAX_CELLS = 150_000
+MULTILEVEL_MAX_CELLS = 120_000
 
 #: Residual a single-precision fast operator can reach reliably.
 SINGLE_TOLERANCE = 1e-6
