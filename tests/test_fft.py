@@ -90,7 +90,7 @@ def test_single_precision_solve_within_its_tolerance():
     assert abs(single.mean_M()[2] / double.mean_M()[2] - 1) < 1e-5
 
 
-@pytest.mark.parametrize("shape", [vm.Sphere(1.0), vm.Box((2.0, 1.0, 0.5))])
+@pytest.mark.parametrize("shape", [vm.Sphere(1.0), vm.Box((2.0, 1.0, 0.5)), vm.Box((4.0, 4.0, 0.2))])
 def test_multilevel_preconditioner_cuts_iterations_at_high_chi(shape):
     """chi = 1000: the multilevel cycle must need at most a quarter of the
     iterations of plain GMRES on the same operator, and fewer than 40."""
@@ -103,7 +103,8 @@ def test_multilevel_preconditioner_cuts_iterations_at_high_chi(shape):
     b = system.rhs([system.source_field(FIELD)])[:, 0]
     plain = gmres(system.matvec, b, tol=1e-8, maxiter=400)
     assert plain.iterations > 4 * sol.iterations, (plain.iterations, sol.iterations)
-    assert np.linalg.norm(plain.x - sol.M.ravel()) < 1e-6 * np.linalg.norm(plain.x)
+    # same system: the solutions agree to (residual tolerance) x (condition number)
+    assert np.linalg.norm(plain.x - sol.M.ravel()) < 1e-5 * np.linalg.norm(plain.x)
 
 
 def test_auto_picks_dense_small_and_fft_beyond_memory_limit():

@@ -243,7 +243,10 @@ def _coarsen(lv: _Level, factor: int = 2) -> _Level:
         rows.append(I)
         cols.append(J)
         blocks.append(B)
-    C = _block_sparse(np.concatenate(rows), np.concatenate(cols), np.concatenate(blocks), mc)
+    if rows:
+        C = _block_sparse(np.concatenate(rows), np.concatenate(cols), np.concatenate(blocks), mc)
+    else:                          # every aggregate full: the coarse tensor is exact
+        C = sp.csr_matrix((3 * mc, 3 * mc))
     if lv.C is not None:
         P = sp.csr_matrix((np.ones(3 * len(parent)), (np.arange(3 * len(parent)),
                            (3 * parent[:, None] + np.arange(3)).ravel())), shape=(3 * len(parent), 3 * mc))
