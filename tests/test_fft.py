@@ -145,3 +145,19 @@ def test_memory_limit_key_in_case_file_is_used(tmp_path):
                          capture_output=True, text=True, timeout=300)
     assert run.returncode == 0, run.stderr
     assert json.loads(run.stdout)["solver"]["method"] == "fft"
+
+
+def test_auto_picks_fast_tetrahedral_method_beyond_memory_limit():
+    """Tetrahedra (18k): dense while it fits; under a limit below the dense
+    estimate, the fast method that fits; a forced dense is refused, naming it."""
+    from volmag.methods import choose, estimates
+    model = vm.Model.build([vm.Body("s", vm.Sphere(1.0), vm.LinearMaterial("m", 100.0),
+                                    mesh=vm.MeshSpec("tet", 0.1))])
+    est = {e.method: e for e in estimates(model.mesh, vm.SolverOptions())}
+    assert choose(model.mesh, vm.SolverOptions(memory_limit=64e9))[0] == "dense"
+    limit = 0.8 * est["dense"].bytes
+    fits = [m for m in ("fft", "fmm") if est[m].bytes <= limit]
+    assert fits
+    assert choose(model.mesh, vm.SolverOptions(memory_limit=limit))[0] in fits
+    with pytest.raises(vm.SolverError, match=f"'{fits[0]}'|'{fits[-1]}'"):
+        choose(model.mesh, vm.SolverOptions(method="dense", memory_limit=limit))
