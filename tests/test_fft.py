@@ -121,28 +121,27 @@ def test_auto_picks_dense_small_and_fft_beyond_memory_limit():
         make_system(model, vm.SolverOptions(method="dense", memory_limit=limit))
 
 
+def run_steel_case(tmp_path, shape, cell, solver):
+    """`volmag run --json` on one hex steel body in a uniform field."""
+    case = tmp_path / "case.toml"
+    case.write_text('title = "steel"\n[[material]]\nname = "steel"\nsusceptibility = 1000\n'
+                    f'[[body]]\nname = "part"\nmaterial = "steel"\nshape = {shape}\n'
+                    f'mesh = {{element = "hex", size = {cell}}}\n'
+                    f'[[source]]\ntype = "uniform"\nH = [0, 0, 1000]\n[solver]\n{solver}\n')
+    return subprocess.run([sys.executable, "-m", "volmag", "run", str(case), "--json", "--quiet"],
+                          capture_output=True, text=True, timeout=300)
+
+
 def test_forced_dense_on_large_grid_exits_2_before_allocating(tmp_path):
     """64,000 cells: a dense operator would need ~700 GiB; the run must refuse
     at once (no assembly), naming the method to use."""
-    case = tmp_path / "big.toml"
-    case.write_text('title = "big block"\n[[material]]\nname = "steel"\nsusceptibility = 1000\n'
-                    '[[body]]\nname = "block"\nmaterial = "steel"\nshape = {type = "box", size = [0.4, 0.4, 0.4]}\n'
-                    'mesh = {element = "hex", size = 0.01}\n'
-                    '[[source]]\ntype = "uniform"\nH = [0, 0, 1000]\n[solver]\nmethod = "dense"\n')
-    run = subprocess.run([sys.executable, "-m", "volmag", "run", str(case), "--json", "--quiet"],
-                         capture_output=True, text=True, timeout=120)
+    run = run_steel_case(tmp_path, '{type = "box", size = [0.4, 0.4, 0.4]}', 0.01, 'method = "dense"')
     assert run.returncode == 2, run.stderr
     assert "dense" in run.stderr and "GiB" in run.stderr and "'fft'" in run.stderr
 
 
 def test_memory_limit_key_in_case_file_is_used(tmp_path):
-    case = tmp_path / "c.toml"
-    case.write_text('title = "c"\n[[material]]\nname = "steel"\nsusceptibility = 100\n'
-                    '[[body]]\nname = "ball"\nmaterial = "steel"\nshape = {type = "sphere", radius = 1}\n'
-                    'mesh = {element = "hex", size = 0.2}\n'
-                    '[[source]]\ntype = "uniform"\nH = [0, 0, 1]\n[solver]\nmemory_limit_gib = 0.02\n')
-    run = subprocess.run([sys.executable, "-m", "volmag", "run", str(case), "--json", "--quiet"],
-                         capture_output=True, text=True, timeout=300)
+    run = run_steel_case(tmp_path, '{type = "sphere", radius = 1}', 0.2, "memory_limit_gib = 0.02")
     assert run.returncode == 0, run.stderr
     assert json.loads(run.stdout)["solver"]["method"] == "fft"
 
