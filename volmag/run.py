@@ -81,7 +81,8 @@ class Run:
             return {"method": "dense", "unknowns": 0, "iterations": 0, "residual": 0.0,
                     "seconds": 0.0, "converged": True}
         return {"method": s.method, "unknowns": int(s.unknowns), "iterations": int(s.iterations),
-                "residual": float(s.residual), "seconds": float(s.seconds), "converged": bool(s.converged)}
+                "residual": float(s.residual), "seconds": float(s.seconds), "converged": bool(s.converged),
+                "method_reason": str(s.stats.get("method_reason", ""))}
 
     def residual_history(self) -> list:
         return [] if self.solution is None else list(self.solution.history)

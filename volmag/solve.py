@@ -155,6 +155,7 @@ class LinearSystem:
     with the interaction tensor (`apply_K`); for tets, `potentials`, the
     potential at the nodes of face charges."""
     method = "?"
+    reason = "requested"          # why this method: set by make_system
     model: Model
     options: SolverOptions
     progress: Progress
@@ -211,7 +212,7 @@ class LinearSystem:
         for k, sources in enumerate(source_sets):
             x, result, history = self._krylov(B[:, k])
             M, H = self.fields(x, fields[k])
-            stats = self.stats()
+            stats = {**self.stats(), "method_reason": self.reason}
             setup = stats.get("assembly_seconds", 0.0) + stats.get("factor_seconds", 0.0)
             out.append(Solution(self.model, sources, M, H, x if self.model.mesh.cell_type == "tet" else None,
                                 result.converged, len(history) - 1, result.residual, tuple(history),
@@ -390,11 +391,14 @@ def make_system(model: Model, options: SolverOptions = SolverOptions(), progress
     method, why = choose(model.mesh, options)
     progress(f"method {method}: {why}")
     if method == "dense":
-        return DenseSystem(model, options, progress)
-    if model.mesh.cell_type == "hex":
-        return GridFFTSystem(model, options, progress)
-    from .tetfast import TetFastSystem
-    return TetFastSystem(model, options, progress, operator=method)
+        system = DenseSystem(model, options, progress)
+    elif model.mesh.cell_type == "hex":
+        system = GridFFTSystem(model, options, progress)
+    else:
+        from .tetfast import TetFastSystem
+        system = TetFastSystem(model, options, progress, operator=method)
+    system.reason = why
+    return system
 
 
 def _all_uniform(sources) -> bool:
