@@ -81,6 +81,21 @@ def test_sphere_dense_and_fft_agree(chi):
     assert abs(xf / (chi / (1 + chi / 3)) - 1) < 0.08
 
 
+def test_diamagnetic_and_anisotropic_bodies_by_fft_equal_dense():
+    """chi < 0 (not positive definite: GMRES) and a symmetric anisotropic chi
+    beside it; the FFT solve equals the dense one."""
+    dia = vm.Body("bismuth", vm.Box((1.0, 0.6, 0.4)), vm.LinearMaterial("bi", -0.4), mesh=vm.MeshSpec("hex", 0.1))
+    chi = np.array([[40.0, 5.0, 0.0], [5.0, 20.0, 0.0], [0.0, 0.0, 10.0]])
+    aniso = vm.Body("ferrite", vm.Box((0.4, 0.4, 0.4)), vm.LinearMaterial("fe", chi), mesh=vm.MeshSpec("hex", 0.1),
+                    placement=vm.Placement((0.0, 0.0, 0.6)))
+    for bodies in ([dia], [aniso], [dia, aniso]):
+        model = vm.Model.build(bodies)
+        dense = vm.solve(model, FIELD, vm.SolverOptions(method="dense"))
+        fast = vm.solve(model, FIELD, vm.SolverOptions(method="fft"))
+        assert fast.converged
+        assert np.abs(fast.M - dense.M).max() < 1e-7 * np.abs(dense.M).max()
+
+
 def test_single_precision_solve_within_its_tolerance():
     body = vm.Body("s", vm.Sphere(1.0), vm.LinearMaterial("m", 1000.0), mesh=vm.MeshSpec("hex", 0.2))
     model = vm.Model.build([body])

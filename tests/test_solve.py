@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 
 import volmag as vm
-from volmag.krylov import gmres
+from volmag.krylov import cg, gmres
 
 
 def sphere_model(chi=100.0, size=0.5):
@@ -38,6 +38,20 @@ def test_gmres_solves_nonsymmetric_system_without_preconditioner():
     assert res.converged
     assert np.allclose(res.x, np.linalg.solve(A, b), rtol=1e-9, atol=1e-11)
     assert np.linalg.norm(b - A @ res.x) / np.linalg.norm(b) <= 1.01e-12
+
+
+def test_cg_solves_spd_system_with_preconditioner():
+    """Against numpy's direct solve (LAPACK); the recorded residual is the
+    preconditioned one, |P (b - A x)| / |P b|."""
+    rng = np.random.default_rng(1)
+    G = rng.standard_normal((80, 80))
+    A = G @ G.T / 80 + np.diag(np.linspace(0.01, 50.0, 80))
+    b = rng.standard_normal(80)
+    d = 1.0 / np.diag(A)
+    res = cg(lambda x: A @ x, b, lambda r: d * r, tol=1e-12, maxiter=500)
+    assert res.converged and len(res.history) == res.iterations + 1
+    assert np.allclose(res.x, np.linalg.solve(A, b), rtol=1e-8, atol=1e-10)
+    assert np.linalg.norm(d * (b - A @ res.x)) / np.linalg.norm(d * b) <= 1e-12
 
 
 def test_linear_response_scales_with_field():

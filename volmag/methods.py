@@ -85,21 +85,23 @@ def memory_limit(options) -> float:
     return options.memory_limit if options.memory_limit is not None else 0.7 * available_memory()
 
 
-def estimates(mesh, options) -> list[Estimate]:
-    """Estimates for dense, fft and fmm on `mesh` with solver `options`."""
+def estimates(mesh, options, symmetric: bool = False) -> list[Estimate]:
+    """Estimates for dense, fft and fmm on `mesh` with solver `options`;
+    `symmetric`: every susceptibility symmetric positive definite (the FFT
+    path then needs no Krylov basis beyond the multilevel range)."""
     if mesh.cell_type == "hex":
-        return [_dense_hex(mesh), _fft_hex(mesh, options.precision),
+        return [_dense_hex(mesh), _fft_hex(mesh, options.precision, symmetric),
                 Estimate("fmm", 0, 0, "applies to tetrahedral meshes only (hexahedral grids use fft)")]
     return [_dense_tet(mesh), _fast_tet(mesh, "fft", "pfft"), _fast_tet(mesh, "fmm", "fmm")]
 
 
-def choose(mesh, options) -> tuple[str, str]:
+def choose(mesh, options, symmetric: bool = False) -> tuple[str, str]:
     """(method, reason): the forced method if it fits, else the fastest that
     fits.  Raises SolverError (before allocating) when nothing fits or the
     forced method does not."""
     from .solve import SolverError
     limit = memory_limit(options)
-    table = {e.method: e for e in estimates(mesh, options)}
+    table = {e.method: e for e in estimates(mesh, options, symmetric)}
     fits = sorted((e for e in table.values() if not e.unavailable and e.bytes <= limit), key=lambda e: e.seconds)
     summary = "; ".join(e.describe() for e in table.values())
     if options.method != "auto":
@@ -141,7 +143,7 @@ def _dense_tet(mesh) -> Estimate:
     return Estimate("dense", 12.0 * n * n, seconds)
 
 
-def _fft_hex(mesh, precision: str) -> Estimate:
+def _fft_hex(mesh, precision: str, symmetric: bool = False) -> Estimate:
     from . import fft
     from .multilevel import COARSE_CELLS
     from .solve import MULTILEVEL_MAX_CELLS, PLAIN_RESTART
@@ -155,7 +157,7 @@ def _fft_hex(mesh, precision: str) -> Estimate:
         + (_FFT_WORK_MULTILEVEL if multilevel else _FFT_WORK_PLAIN) * product
     # operator, the preconditioner's coarse levels and smoothers (~ a third of
     # another operator plus 200 B a cell), Krylov basis, fields
-    basis = KRYLOV_BYTES_PER_UNKNOWN if multilevel else 8.0 * PLAIN_RESTART
+    basis = KRYLOV_BYTES_PER_UNKNOWN if multilevel else 5 * 8.0 if symmetric else 8.0 * PLAIN_RESTART
     bytes_ = 1.4 * fft.memory_estimate(shape, m, precision) + 200.0 * m + basis * 3 * m + 3 * 8 * 9 * m
     return Estimate("fft", bytes_, seconds)
 

@@ -18,7 +18,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from . import operators
-from .krylov import gmres
+from .krylov import cg, gmres
 from .meshing import Mesh, mesh_model
 from .progress import QUIET, Progress
 from .sources import total_source_field
@@ -312,6 +312,8 @@ class GridFFTSystem(LinearSystem):
         self.method = "fft"
         mesh = model.mesh
         self.chi = model.element_chi()
+        # symmetric positive definite chi everywhere: conjugate gradients apply
+        self.spd = _symmetric_positive(self.chi)
         t0 = time.perf_counter()
         self.K = GridOperator(mesh.grid_index, mesh.cell_size, options.precision)
         progress(f"FFT operator: {mesh.n_cells} cells on a {'x'.join(map(str, self.K.shape))} grid, "
@@ -349,21 +351,44 @@ class GridFFTSystem(LinearSystem):
                 "padded_grid": list(self.K.padded), "levels": self.P.describe() if self.P else "none"}
 
     def _krylov(self, b):
+        """GMRES with the multilevel cycle where it applies; otherwise (or
+        when the cycle stalls) conjugate gradients on the symmetric form, or
+        plain GMRES when some chi is not symmetric positive definite."""
         opts = self.options
         tol = max(opts.tolerance, SINGLE_TOLERANCE) if opts.precision == "single" else opts.tolerance
-        history = []
+        history, x0 = [], None
         if self.P is not None:
             result = gmres(self.matvec, b, self.precond, tol=tol, maxiter=min(opts.max_iterations, 60),
                            callback=self._report)
-            history = list(result.history)
+            history, x0 = list(result.history), result.x
             if result.converged or opts.max_iterations <= 60:
                 return result.x, result, history
             self.progress("multilevel preconditioner stalled; continuing without it")
-        result = gmres(self.matvec, b, None, x0=result.x if history else None, tol=tol,
-                       maxiter=opts.max_iterations - max(len(history) - 1, 0), restart=PLAIN_RESTART,
-                       callback=self._report)
+        left = opts.max_iterations - max(len(history) - 1, 0)
+        if self.spd:
+            result = self._cg(b, tol, x0, left)
+        else:
+            result = gmres(self.matvec, b, None, x0=x0, tol=tol, maxiter=left, restart=PLAIN_RESTART,
+                           callback=self._report)
         history += list(result.history[1:] if history else result.history)
         return result.x, result, history
+
+    def _cg(self, b, tol, x0, maxiter):
+        """Conjugate gradients on the symmetric form (chi^-1 - K) M = chi^-1 b,
+        preconditioned by chi: the same residual as I - chi K, one product per
+        iteration and no Krylov basis (Galerkin Newell tensors make K
+        symmetric; chi symmetric positive definite in every cell)."""
+        inv = np.linalg.inv(self.chi)
+
+        def matvec(x):
+            M = x.reshape(-1, 3)
+            return (np.einsum("eij,ej->ei", inv, M) - self.K(M)).ravel()
+
+        def precond(r):
+            return np.einsum("eij,ej->ei", self.chi, r.reshape(-1, 3)).ravel()
+
+        bs = np.einsum("eij,ej->ei", inv, b.reshape(-1, 3)).ravel()
+        return cg(matvec, bs, precond, x0=x0, tol=tol, maxiter=maxiter, callback=self._report)
 
 
 #: Restart length of unpreconditioned GMRES: the basis is the only big array
@@ -376,7 +401,8 @@ PLAIN_RESTART = 150
 #: chi = 10 needs 27 plain iterations, 16 preconditioned ones at ~5x the cost).
 MULTILEVEL_CHI = 30.0
 #: ... and up to this many cells, where it is measured to work (see the
-#: limits in :mod:`volmag.multilevel`); beyond, plain GMRES with a long restart.
+#: limits in :mod:`volmag.multilevel`); beyond, conjugate gradients (or plain
+#: GMRES with a long restart when some chi is not symmetric positive definite).
 MULTILEVEL_MAX_CELLS = 120_000
 
 #: Residual a single-precision fast operator can reach reliably.
@@ -388,7 +414,7 @@ def make_system(model: Model, options: SolverOptions = SolverOptions(), progress
     for "auto" the fastest that fits in memory (:func:`volmag.methods.choose`);
     refuses, before allocating, what cannot fit."""
     from .methods import choose
-    method, why = choose(model.mesh, options)
+    method, why = choose(model.mesh, options, _symmetric_positive(model.element_chi()))
     progress(f"method {method}: {why}")
     if method == "dense":
         system = DenseSystem(model, options, progress)
@@ -399,6 +425,12 @@ def make_system(model: Model, options: SolverOptions = SolverOptions(), progress
         system = TetFastSystem(model, options, progress, operator=method)
     system.reason = why
     return system
+
+
+def _symmetric_positive(chi: np.ndarray) -> bool:
+    """Every susceptibility tensor (ne, 3, 3) symmetric positive definite."""
+    kinds = np.unique(chi.reshape(-1, 9), axis=0).reshape(-1, 3, 3)
+    return bool(np.allclose(kinds, kinds.transpose(0, 2, 1)) and np.linalg.eigvalsh(kinds).min() > 0)
 
 
 def _all_uniform(sources) -> bool:
