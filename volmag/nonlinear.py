@@ -8,9 +8,13 @@ per cell for hexes). With the element law M = M(H) the residual is
 
 and its exact Jacobian replaces chi in the linear operator by dM/dH per
 element: the differential susceptibility along H and the chord
-susceptibility across it. Each Newton correction is solved by GMRES,
-preconditioned by an LU factor of the current Jacobian (single precision),
-warm-started from the previous correction; a backtracking line search on |R|
+susceptibility across it. Each Newton correction is solved by GMRES from
+zero (a warm start from the previous, quadratically larger, correction
+costs iterations in the last steps), preconditioned by an LU factor of the
+current Jacobian (single precision) on the dense paths, or matrix-free: hex
+grids by FFT with the multilevel cycle, tetrahedra by the precorrected FFT
+(or FMM) of S, built once, with the Jacobi + per-body coarse correction of
+each Jacobian (:mod:`volmag.tetfast`). A backtracking line search on |R|
 guards each step, with a damped fixed-point step as the fallback
 (Kelley, Solving Nonlinear Equations with Newton's Method, SIAM 2003).
 Convergence needs both the residual and the change in M below tolerance;
@@ -56,16 +60,24 @@ class ElementLaw:
         return J
 
 
+def _dense_tet_bytes(n_nodes: int, n_faces: int) -> float:
+    """Bytes of the dense nonlinear tet path: S (nodes x faces) and the
+    Jacobian with its single-precision factor."""
+    return 8.0 * n_nodes * n_faces + 20.0 * n_nodes * n_nodes
+
+
 class _TetProblem:
-    def __init__(self, model, Hs, progress):
+    def __init__(self, model, Hs, progress, limit=None):
         mesh = model.mesh
         self.mesh, self.Hs = mesh, Hs
         self.topo = operators.tet_topology(mesh.nodes, mesh.cells)
         n, nf = len(mesh.nodes), len(self.topo.faces)
-        need = 8.0 * n * nf + 20.0 * n * n
-        if need > 0.7 * available_memory():
-            raise SolverError(f"the nonlinear solve of {n} unknowns needs {need / 2**30:.1f} GiB "
-                              "(single-layer matrix and Jacobian); use a coarser mesh")
+        need = _dense_tet_bytes(n, nf)
+        limit = 0.7 * available_memory() if limit is None else limit
+        if need > limit:
+            raise SolverError(f"the dense nonlinear solve of {n} unknowns needs {need / 2**30:.1f} GiB "
+                              f"(single-layer matrix and Jacobian), over the limit of {limit / 2**30:.1f} GiB; "
+                              "use method 'fft' (or 'auto'), or a coarser mesh")
         progress(f"assembling single-layer matrix: {n} nodes x {nf} faces")
         tri = kernels.triangle_mesh(mesh.nodes, self.topo.faces)
         self.S = kernels.mesh_single_layer_matrix(tri.nodes, tri)
@@ -85,6 +97,42 @@ class _TetProblem:
 
     def linear_step(self, JM):
         return _dense_step(self.jacobian(JM))
+
+
+class _TetFastProblem(_TetProblem):
+    """Tetrahedra, matrix-free: S by a fast product (precorrected FFT, or
+    the face-charge FMM), built once; each Newton step applies
+    v -> v - S C_J v (C_J the face charges of dM/dH) and is preconditioned
+    by the Jacobi + per-body coarse correction of that Jacobian (the default
+    of the linear fast solve, see :mod:`volmag.tetfast`)."""
+
+    def __init__(self, model, Hs, progress, operator: str = "fft", operator_tol: float | None = None):
+        from .tetfast import DEFAULT_OPERATOR_TOL
+        mesh = model.mesh
+        self.model, self.mesh, self.Hs, self.progress = model, mesh, Hs, progress
+        self.topo = operators.tet_topology(mesh.nodes, mesh.cells)
+        self.n = len(mesh.nodes)
+        tol = DEFAULT_OPERATOR_TOL if operator_tol is None else float(operator_tol)
+        progress(f"fast nodal operator ({operator}): {self.n} unknowns, {len(self.topo.faces)} faces")
+        if operator == "fft":
+            from .pfft import PrecorrectedFFT
+            self.S = PrecorrectedFFT(mesh.nodes, self.topo.faces, tol=tol, progress=progress)
+        else:
+            from .fmm import FaceChargeFMM
+            self.S = FaceChargeFMM(mesh.nodes, self.topo.faces, tol=tol)
+            progress(f"FMM: {self.S.near.nnz} near pairs, {self.S.nbytes() / 2**20:.0f} MiB")
+
+    def residual(self, x, M):
+        return x - self.S(operators.face_charges(self.topo, M))
+
+    def jacobian(self, JM):
+        raise NotImplementedError("the fast tetrahedral Jacobian is applied, never assembled")
+
+    def linear_step(self, JM):
+        from .tetfast import jacobi_coarse_preconditioner
+        C = operators.charge_operator(self.topo, self.mesh.cells, JM, self.n)
+        P = jacobi_coarse_preconditioner(self.S, C, self.mesh, len(self.model.bodies))
+        return (lambda v: v - self.S(C @ v)), P
 
 
 class _HexProblem:
@@ -143,15 +191,26 @@ def _dense_step(A):
 
 
 def _method(model, options, progress) -> str:
-    """Dense, or FFT for hexahedral grids (the fast tetrahedral operators are
-    linear-only in this version)."""
-    if model.mesh.cell_type == "tet":
-        if options.method in ("fft", "fmm"):
-            raise SolverError(f"solver method {options.method!r} is not available for nonlinear materials on "
-                              "tetrahedra; use 'dense' (or 'auto'), or hexahedral cells with 'fft'")
-        return "dense"
-    from .methods import choose
+    """The linear solve's choice (:func:`volmag.methods.choose`); for
+    tetrahedra "auto" passes over dense when its nonlinear path (S stored,
+    nodes x faces) does not fit, taking the fastest fast method that does."""
+    from .methods import choose, estimates, memory_limit
     method, why = choose(model.mesh, options)
+    mesh = model.mesh
+    if mesh.cell_type == "tet" and method == "dense" and options.method == "auto":
+        limit = memory_limit(options)
+        need = _dense_tet_bytes(len(mesh.nodes), 2 * mesh.n_cells + 1)
+        if need > limit:
+            fast = sorted((e for e in estimates(mesh, options)
+                           if e.method != "dense" and not e.unavailable and e.bytes <= limit),
+                          key=lambda e: e.seconds)
+            if not fast:
+                table = "; ".join(e.describe() for e in estimates(mesh, options))
+                raise SolverError(f"no solver method fits the nonlinear solve of {mesh.n_cells} tetrahedra in "
+                                  f"{limit / 2**30:.1f} GiB ({table}); use a coarser mesh")
+            method = fast[0].method
+            why = (f"the dense nonlinear solve needs ~{need / 2**30:.2f} GiB (single-layer matrix and "
+                   f"Jacobian), over the limit of {limit / 2**30:.2f} GiB; {fast[0].describe()}")
     progress(f"method {method}: {why}")
     return method
 
@@ -165,8 +224,11 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
     mesh = model.mesh
     Hs = operators.element_average(mesh, lambda p: total_source_field(sources, p))
     method = _method(model, options, progress)
-    if mesh.cell_type == "tet":
-        problem = _TetProblem(model, Hs, progress)
+    if mesh.cell_type == "tet" and method == "dense":
+        from .methods import memory_limit
+        problem = _TetProblem(model, Hs, progress, memory_limit(options))
+    elif mesh.cell_type == "tet":
+        problem = _TetFastProblem(model, Hs, progress, operator=method)
     elif method == "fft":
         problem = _HexFFTProblem(model, Hs, options, progress)
     else:
@@ -176,7 +238,6 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
     law = ElementLaw(model)
     x = np.zeros(problem.n)
     history, best = [], None
-    dx_prev = None
     converged = False
     for step in range(max_steps + 1):
         H = problem.field(x)
@@ -197,7 +258,10 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
         if step == max_steps:
             break
         matvec, precond = problem.linear_step(law.jacobian(H))
-        lin = gmres(matvec, -R, precond, x0=dx_prev, tol=min(1e-3, 0.1 * res) if step else 1e-6,
+        # forcing term 0.1 res, floored at 1e-8 (reached only once res < 1e-7,
+        # where the next residual is far below tolerance anyway): GMRES on a
+        # fast operator would otherwise chase round-off
+        lin = gmres(matvec, -R, precond, tol=min(1e-3, max(0.1 * res, 1e-8)) if step else 1e-6,
                     maxiter=200, restart=60 if precond is not None else 150)
         dx, t = lin.x, 1.0
         rnorm = np.linalg.norm(R)
@@ -212,7 +276,7 @@ def solve_nonlinear(model, sources, options, progress=QUIET, max_steps: int = 60
         M_new = law.magnetisation(problem.field(x_new))
         dM = np.linalg.norm(M_new - M) / max(np.linalg.norm(M_new), 1e-300)
         history.append({"step": t, "linear_iterations": lin.iterations, "dM": dM, "residual": np.nan})
-        dx_prev, x = t * dx, x_new
+        x = x_new
     res, x, M, H = best
     if not converged:
         progress(f"Newton did not converge: best residual {res:.3e}")

@@ -160,51 +160,21 @@ class TetFastSystem(LinearSystem):
             else:
                 self._local = spla.spilu(A, drop_tol=1e-4, fill_factor=10, permc_spec="COLAMD")
         elif kind == "jacobi":
-            # diag(A): every face with C[f, i] != 0 touches node i, so it is near
-            d = 1.0 - np.asarray(self.S.near.multiply(self.C.T.tocsr()).sum(axis=1)).ravel()
-            self._local = _Diagonal(1.0 / d)
+            self._local = _Diagonal(1.0 / operator_diagonal(self.S, self.C))
         elif kind != "none":
             raise ValueError(f"preconditioner must be 'ilu', 'lu', 'jacobi' or 'none', not {kind!r}")
         self._coarse = None
         if coarse:
-            Z = self._coarse_basis()
-            # batched products, a few columns at a time (grid memory)
-            AZ = np.column_stack([Z[:, k:k + 8] - self.S(self.C @ Z[:, k:k + 8])
-                                  for k in range(0, Z.shape[1], 8)])
-            self._coarse = (Z, AZ, np.linalg.pinv(Z.T @ AZ))
+            self._coarse = coarse_correction(self.S, self.C, self._coarse_basis())
 
     def _coarse_basis(self) -> np.ndarray:
-        """Columns 1, x, y, z restricted to the nodes of each body, scaled to
-        unit norm (n, 4 * bodies)."""
-        mesh = self.model.mesh
-        n = len(mesh.nodes)
-        cols = []
-        for b in range(len(self.model.bodies)):
-            used = np.zeros(n, bool)
-            used[mesh.cells[mesh.body_id == b].ravel()] = True
-            if not used.any():
-                continue
-            x = mesh.nodes - mesh.nodes[used].mean(axis=0)
-            for col in (np.ones(n), x[:, 0], x[:, 1], x[:, 2]):
-                c = np.where(used, col, 0.0)
-                norm = np.linalg.norm(c)
-                if norm > 0:
-                    cols.append(c / norm)
-        return np.column_stack(cols)
-
-    def _local_solve(self, r):
-        return r if self._local is None else self._local.solve(r)
+        return body_coarse_basis(self.model.mesh, len(self.model.bodies))
 
     def precond(self, r: np.ndarray) -> np.ndarray:
         """Approximate A^-1 r: coarse solve, then the local factor on the
         remaining residual (the A Z products are stored, so no extra
         operator product is spent)."""
-        if self._coarse is None:
-            return self._local_solve(r)
-        Z, AZ, E = self._coarse
-        y = E @ (Z.T @ r)
-        x = Z @ y
-        return x + self._local_solve(r - AZ @ y)
+        return two_level(r, self._coarse, self._local)
 
     # --------------------------------------------------------------- report --
     def nbytes(self) -> int:
@@ -232,3 +202,60 @@ class _Diagonal:
 
     def solve(self, r):
         return self.d * r if r.ndim == 1 else self.d[:, None] * r
+
+
+# ---------------------------------------------- preconditioner pieces --
+def operator_diagonal(S, C) -> np.ndarray:
+    """diag(I - S C) (n,), dimensionless, for a fast product S (with its
+    exact near block S.near) and a face-charge operator C (nf x n): every
+    face with C[f, i] != 0 touches node i, so it is near and exact."""
+    return 1.0 - np.asarray(S.near.multiply(C.T.tocsr()).sum(axis=1)).ravel()
+
+
+def body_coarse_basis(mesh, n_bodies: int) -> np.ndarray:
+    """Columns 1, x, y, z restricted to the nodes of each body, scaled to
+    unit norm (n, 4 * bodies), dimensionless."""
+    n = len(mesh.nodes)
+    cols = []
+    for b in range(n_bodies):
+        used = np.zeros(n, bool)
+        used[mesh.cells[mesh.body_id == b].ravel()] = True
+        if not used.any():
+            continue
+        x = mesh.nodes - mesh.nodes[used].mean(axis=0)
+        for col in (np.ones(n), x[:, 0], x[:, 1], x[:, 2]):
+            c = np.where(used, col, 0.0)
+            norm = np.linalg.norm(c)
+            if norm > 0:
+                cols.append(c / norm)
+    return np.column_stack(cols)
+
+
+def coarse_correction(S, C, Z: np.ndarray) -> tuple:
+    """(Z, A Z, (Z^T A Z)^+) of A = I - S C on the coarse basis Z (n, k):
+    the stored pieces of the two-level correction (:func:`two_level`)."""
+    # batched products, a few columns at a time (grid memory)
+    AZ = np.column_stack([Z[:, k:k + 8] - S(C @ Z[:, k:k + 8]) for k in range(0, Z.shape[1], 8)])
+    return Z, AZ, np.linalg.pinv(Z.T @ AZ)
+
+
+def two_level(r: np.ndarray, coarse, local) -> np.ndarray:
+    """Approximate A^-1 r: the coarse solve (pieces of
+    :func:`coarse_correction`, or None), then the local factor (an object
+    with .solve, or None) on the remaining residual."""
+    if coarse is None:
+        return r if local is None else local.solve(r)
+    Z, AZ, E = coarse
+    y = E @ (Z.T @ r)
+    rest = r - AZ @ y
+    return Z @ y + (rest if local is None else local.solve(rest))
+
+
+def jacobi_coarse_preconditioner(S, C, mesh, n_bodies: int):
+    """r -> approximate (I - S C)^-1 r, Jacobi + per-body coarse (1, x, y, z)
+    correction (the default of TetFastSystem) for any face-charge operator C
+    (e.g. built on a differential susceptibility); costs one batched product
+    of 4 columns per body."""
+    local = _Diagonal(1.0 / operator_diagonal(S, C))
+    coarse = coarse_correction(S, C, body_coarse_basis(mesh, n_bodies))
+    return lambda r: two_level(r, coarse, local)
