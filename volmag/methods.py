@@ -37,10 +37,10 @@ _HEX_ENTRY_SECONDS = 4e-9
 #: Seconds per padded grid point and log2 of the grid size, for one FFT product.
 _FFT_POINT_SECONDS = 2.2e-9
 #: Fine-grid products per iteration and iterations at high chi: with the
-#: multilevel preconditioner (up to its cell limit) and without (products
-#: counted with the orthogonalisation against a long basis); measured on voxel
-#: spheres at chi = 1000.
-_FFT_WORK_MULTILEVEL, _FFT_WORK_PLAIN = 5 * 35, 1.5 * 250
+#: multilevel preconditioner (up to its cell limit), plain GMRES (products
+#: counted with the orthogonalisation against a long basis) and conjugate
+#: gradients; measured on voxel spheres at chi = 1000.
+_FFT_WORK_MULTILEVEL, _FFT_WORK_PLAIN, _FFT_WORK_CG = 5 * 35, 1.5 * 250, 1.2 * 150
 
 #: Products of a fast tetrahedral solve (set-up of the preconditioner and 2-10
 #: iterations per right-hand side, measured from chi = 10 to 1000).
@@ -154,7 +154,7 @@ def _fft_hex(mesh, precision: str, symmetric: bool = False) -> Estimate:
     coarse = 3.0 * min(m, COARSE_CELLS)     # unknowns of the preconditioner's dense coarsest level
     multilevel = m <= MULTILEVEL_MAX_CELLS
     seconds = _FFT_SETUP_SECONDS + _FACTOR_SECONDS_PER_FLOP * coarse ** 3 / 1.5 + 20 * product \
-        + (_FFT_WORK_MULTILEVEL if multilevel else _FFT_WORK_PLAIN) * product
+        + (_FFT_WORK_MULTILEVEL if multilevel else _FFT_WORK_CG if symmetric else _FFT_WORK_PLAIN) * product
     # operator, the preconditioner's coarse levels and smoothers (~ a third of
     # another operator plus 200 B a cell), Krylov basis, fields
     basis = KRYLOV_BYTES_PER_UNKNOWN if multilevel else 5 * 8.0 if symmetric else 8.0 * PLAIN_RESTART

@@ -79,10 +79,13 @@ class Model:
                 return i
         raise KeyError(f"no body named {name!r}; bodies: {[b.name for b in self.bodies]}")
 
+    def body_chi(self) -> np.ndarray:
+        """Susceptibility tensor (nb, 3, 3) of every body, model axes."""
+        return np.array([b.material.chi_tensor(b.placement.rotation_matrix()) for b in self.bodies])
+
     def element_chi(self) -> np.ndarray:
         """Susceptibility tensor (ne, 3, 3) of every element, model axes."""
-        per_body = np.array([b.material.chi_tensor(b.placement.rotation_matrix()) for b in self.bodies])
-        return per_body[self.mesh.body_id]
+        return self.body_chi()[self.mesh.body_id]
 
     def element_remanence(self) -> np.ndarray:
         """Remanent magnetisation (ne, 3), A/m, of every element, model axes."""
@@ -313,7 +316,7 @@ class GridFFTSystem(LinearSystem):
         mesh = model.mesh
         self.chi = model.element_chi()
         # symmetric positive definite chi everywhere: conjugate gradients apply
-        self.spd = _symmetric_positive(self.chi)
+        self.spd = _symmetric_positive(model.body_chi())
         t0 = time.perf_counter()
         self.K = GridOperator(mesh.grid_index, mesh.cell_size, options.precision)
         progress(f"FFT operator: {mesh.n_cells} cells on a {'x'.join(map(str, self.K.shape))} grid, "
@@ -414,7 +417,7 @@ def make_system(model: Model, options: SolverOptions = SolverOptions(), progress
     for "auto" the fastest that fits in memory (:func:`volmag.methods.choose`);
     refuses, before allocating, what cannot fit."""
     from .methods import choose
-    method, why = choose(model.mesh, options, _symmetric_positive(model.element_chi()))
+    method, why = choose(model.mesh, options, _symmetric_positive(model.body_chi()))
     progress(f"method {method}: {why}")
     if method == "dense":
         system = DenseSystem(model, options, progress)
@@ -428,9 +431,8 @@ def make_system(model: Model, options: SolverOptions = SolverOptions(), progress
 
 
 def _symmetric_positive(chi: np.ndarray) -> bool:
-    """Every susceptibility tensor (ne, 3, 3) symmetric positive definite."""
-    kinds = np.unique(chi.reshape(-1, 9), axis=0).reshape(-1, 3, 3)
-    return bool(np.allclose(kinds, kinds.transpose(0, 2, 1)) and np.linalg.eigvalsh(kinds).min() > 0)
+    """Every susceptibility tensor (k, 3, 3) symmetric positive definite."""
+    return bool(np.allclose(chi, chi.transpose(0, 2, 1)) and np.linalg.eigvalsh(chi).min() > 0)
 
 
 def _all_uniform(sources) -> bool:
