@@ -37,8 +37,11 @@ at 7k cells), so the cycle works as a preconditioner only while the coarse
 corrections catch those modes: 18-34 iterations from 7k to 113k cells
 (against 150-200 unpreconditioned), but at 382k cells it stagnates near 1e-1
 (with two or four cells per aggregate, with more or fewer inner steps), and
-pre-smoothing, damping, additive combination or a plain Richardson smoother
-all make it worse.  :class:`volmag.solve.GridFFTSystem` therefore uses it up
+pre-smoothing, damping, additive combination, a plain Richardson smoother or
+runs cut to 8-16 cells all make it worse.  (Nor do cheaper global remedies
+help unpreconditioned GMRES: deflating M = constant, linear or quadratic per
+body, or starting from the Galerkin coarse solution, changed 116-125
+iterations by less than 10 %.)  :class:`volmag.solve.GridFFTSystem` therefore uses it up
 to ``MULTILEVEL_MAX_CELLS`` only.  A smoother that is convergent for the
 charged modes is the missing piece.
 """
