@@ -16,7 +16,7 @@ import time
 from pathlib import Path
 
 from volmag import sweep as sw
-from volmag.sweep import usable_cores
+from volmag.machine import usable_cores
 
 CASE = """\
 title = "sweep throughput: sphere"

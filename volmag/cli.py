@@ -453,6 +453,7 @@ def cmd_sweep(args) -> int:
     or missed an expectation, 2 for a bad case, key or cluster address."""
     from . import sweep as sw
     from .case import CaseError
+    from .machine import usable_cores
     from .progress import Progress
     progress = Progress(True if args.progress else False if args.quiet else None)
     out = args.out or Path(args.case.stem + "_sweep")
@@ -470,7 +471,7 @@ def cmd_sweep(args) -> int:
     pending = sw.pending(plan, out)
     try:
         if pending:
-            workers = args.workers or (None if args.scheduler else min(len(pending), sw.usable_cores()))
+            workers = args.workers or (None if args.scheduler else min(len(pending), usable_cores()))
             with sw.cluster(args.scheduler, workers) as client:
                 progress(f"Dask scheduler {client.scheduler.address}, "
                          f"{len(client.scheduler_info()['workers'])} workers")

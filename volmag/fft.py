@@ -27,27 +27,19 @@ transform pairs when every axis is padded to 2 n.
 from __future__ import annotations
 
 import functools
-import os
 
 import numpy as np
 import scipy.fft as sfft
 from numba import njit, prange
 
 from . import newell
+from .machine import usable_cores
 
 PRECISIONS = {"double": (np.float64, np.complex128), "single": (np.float32, np.complex64)}
 
 # Parity of each tensor component (xx, yy, zz, xy, xz, yz) in x, y, z.
 _COMPONENTS = ((0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2))
 _PARITY = np.array([[1, 1, 1], [1, 1, 1], [1, 1, 1], [-1, -1, 1], [-1, 1, -1], [1, -1, -1]])
-
-
-def default_workers() -> int:
-    """Threads for the transforms: the cores this process may use."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:
-        return os.cpu_count() or 1
 
 
 def padded_shape(shape) -> tuple[int, int, int]:
@@ -91,7 +83,7 @@ def _kernel_spectrum(shape, cell, precision):
             full = np.concatenate([_PARITY[c, ax] * mirror, full], axis=ax)
         padded[where] = full
         # even/odd symmetry makes the transform real; the imaginary part is rounding
-        out[c] = sfft.rfftn(padded, workers=default_workers()).real
+        out[c] = sfft.rfftn(padded, workers=usable_cores()).real
     return out
 
 
@@ -113,7 +105,7 @@ class GridOperator:
         self.cell = np.asarray(cell, float)
         self.precision = precision
         self.real, self.complex = PRECISIONS[precision]
-        self.workers = workers or default_workers()
+        self.workers = workers or usable_cores()
         self.padded = padded_shape(self.shape)
         self.n_cells = len(grid_index)
         self.flat = np.ravel_multi_index((grid_index - grid_index.min(axis=0)).T, self.shape)

@@ -23,10 +23,11 @@ from __future__ import annotations
 
 import importlib
 import math
-import os
 from dataclasses import dataclass
 
 import numpy as np
+
+from .machine import available_memory, usable_cores
 
 #: Seconds per flop of an LU factor in single precision (2 cores, measured).
 _FACTOR_SECONDS_PER_FLOP = 1 / 2.5e10
@@ -66,18 +67,6 @@ class Estimate:
         if self.unavailable:
             return f"{self.method}: {self.unavailable}"
         return f"{self.method}: ~{self.bytes / 2**30:.2f} GiB, ~{_duration(self.seconds)}"
-
-
-def available_memory() -> float:
-    """Bytes of memory available now (Linux /proc/meminfo; else total RAM)."""
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return float(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return float(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
 
 
 def memory_limit(options) -> float:
@@ -139,20 +128,20 @@ def _dense_hex(mesh) -> Estimate:
 def _dense_tet(mesh) -> Estimate:
     n = float(len(mesh.nodes))
     faces = 2.0 * mesh.n_cells + 1
-    seconds = _TET_PAIR_SECONDS * n * faces / _cores() + _FACTOR_SECONDS_PER_FLOP * n ** 3 / 1.5
+    seconds = _TET_PAIR_SECONDS * n * faces / usable_cores() + _FACTOR_SECONDS_PER_FLOP * n ** 3 / 1.5
     return Estimate("dense", 12.0 * n * n, seconds)
 
 
 def _fft_hex(mesh, precision: str, symmetric: bool = False) -> Estimate:
     from . import fft
-    from .multilevel import COARSE_CELLS
-    from .solve import MULTILEVEL_MAX_CELLS, PLAIN_RESTART
+    from .multilevel import COARSE_CELLS, MAX_CELLS
+    from .solve import PLAIN_RESTART
     shape = fft.grid_shape(mesh.grid_index)
     m = mesh.n_cells
     L = float(np.prod(fft.padded_shape(shape)))
     product = _FFT_POINT_SECONDS * L * math.log2(max(L, 2.0))
     coarse = 3.0 * min(m, COARSE_CELLS)     # unknowns of the preconditioner's dense coarsest level
-    multilevel = m <= MULTILEVEL_MAX_CELLS
+    multilevel = m <= MAX_CELLS
     seconds = _FFT_SETUP_SECONDS + _FACTOR_SECONDS_PER_FLOP * coarse ** 3 / 1.5 + 20 * product \
         + (_FFT_WORK_MULTILEVEL if multilevel else _FFT_WORK_CG if symmetric else _FFT_WORK_PLAIN) * product
     # operator, the preconditioner's coarse levels and smoothers (~ a third of
@@ -179,9 +168,3 @@ def _fast_tet(mesh, method: str, module: str) -> Estimate:
     nbytes, setup, product = mod.estimate(n, faces, 1e-6)
     return Estimate(method, nbytes + KRYLOV_BYTES_PER_UNKNOWN * n, setup + _FAST_TET_PRODUCTS * product)
 
-
-def _cores() -> int:
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:
-        return os.cpu_count() or 1

@@ -30,7 +30,7 @@ import scipy.linalg as sla
 from . import kernels, operators
 from .krylov import gmres
 from .progress import QUIET
-from .methods import available_memory
+from .machine import available_memory
 from .solve import SolverError, Solution, _all_uniform
 from .sources import total_source_field
 
@@ -171,12 +171,8 @@ class _HexFFTProblem(_HexProblem):
         return self.Hs + self.K(x.reshape(-1, 3))
 
     def linear_step(self, JM):
-        from .multilevel import MultilevelPreconditioner
-        from .solve import MULTILEVEL_CHI, MULTILEVEL_MAX_CELLS
-        P = None
-        if np.abs(JM).max() > MULTILEVEL_CHI and self.mesh.n_cells <= MULTILEVEL_MAX_CELLS:
-            P = MultilevelPreconditioner(self.mesh.grid_index, self.mesh.cell_size, JM, self.options.precision,
-                                         fine_op=self.K)
+        from .multilevel import preconditioner_for
+        P = preconditioner_for(self.mesh.grid_index, self.mesh.cell_size, JM, self.options.precision, self.K)
         return (lambda v: v - np.einsum("eij,ej->ei", JM, self.K(v.reshape(-1, 3))).ravel()), P
 
 
@@ -201,11 +197,11 @@ def _method(model, options, progress) -> str:
         limit = memory_limit(options)
         need = _dense_tet_bytes(len(mesh.nodes), 2 * mesh.n_cells + 1)
         if need > limit:
-            fast = sorted((e for e in estimates(mesh, options)
-                           if e.method != "dense" and not e.unavailable and e.bytes <= limit),
+            table = estimates(mesh, options)
+            fast = sorted((e for e in table if e.method != "dense" and not e.unavailable and e.bytes <= limit),
                           key=lambda e: e.seconds)
             if not fast:
-                table = "; ".join(e.describe() for e in estimates(mesh, options))
+                table = "; ".join(e.describe() for e in table)
                 raise SolverError(f"no solver method fits the nonlinear solve of {mesh.n_cells} tetrahedra in "
                                   f"{limit / 2**30:.1f} GiB ({table}); use a coarser mesh")
             method = fast[0].method

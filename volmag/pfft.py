@@ -53,7 +53,6 @@ from __future__ import annotations
 
 import functools
 import math
-import os
 import time
 from dataclasses import dataclass
 
@@ -63,6 +62,7 @@ import scipy.sparse as sp
 from numba import njit, prange
 
 from . import kernels
+from .machine import usable_cores
 
 INV_4PI = 1.0 / (4.0 * math.pi)
 
@@ -127,14 +127,6 @@ def subdivided_rule(levels: int) -> tuple[np.ndarray, np.ndarray]:
         qp = np.vstack([qp @ t for t in subs])
         qw = np.concatenate([qw / 4.0] * 4)
     return np.ascontiguousarray(qp), np.ascontiguousarray(qw)
-
-
-def default_workers() -> int:
-    """Threads for the transforms: the cores this process may use."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:
-        return os.cpu_count() or 1
 
 
 # ---------------------------------------------------------------- stencils --
@@ -460,7 +452,7 @@ class PrecorrectedFFT:
         self.faces = np.ascontiguousarray(faces, dtype=np.int64)
         self.tol = float(tol)
         self.params = params or parameters(tol)
-        self.workers = workers or default_workers()
+        self.workers = workers or usable_cores()
         p = self.params.order
         self.order = p
         tri = self.nodes[self.faces]

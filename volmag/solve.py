@@ -310,23 +310,22 @@ class GridFFTSystem(LinearSystem):
 
     def __init__(self, model: Model, options: SolverOptions = SolverOptions(), progress: Progress = QUIET):
         from .fft import GridOperator
-        from .multilevel import MultilevelPreconditioner
+        from .multilevel import preconditioner_for
         self.model, self.options, self.progress = model, options, progress
         self.method = "fft"
         mesh = model.mesh
         self.chi = model.element_chi()
         # symmetric positive definite chi everywhere: conjugate gradients apply
         self.spd = _symmetric_positive(model.body_chi())
+        self.chi_inv = None
         t0 = time.perf_counter()
         self.K = GridOperator(mesh.grid_index, mesh.cell_size, options.precision)
         progress(f"FFT operator: {mesh.n_cells} cells on a {'x'.join(map(str, self.K.shape))} grid, "
                  f"padded {'x'.join(map(str, self.K.padded))}, {options.precision} precision")
         self.assembly_seconds = time.perf_counter() - t0
         t0 = time.perf_counter()
-        self.P = None
-        if np.abs(self.chi).max() > MULTILEVEL_CHI and mesh.n_cells <= MULTILEVEL_MAX_CELLS:
-            self.P = MultilevelPreconditioner(mesh.grid_index, mesh.cell_size, self.chi, options.precision,
-                                              fine_op=self.K)
+        self.P = preconditioner_for(mesh.grid_index, mesh.cell_size, self.chi, options.precision, self.K)
+        if self.P is not None:
             progress(f"multilevel preconditioner: levels {self.P.describe()} cells, "
                      f"{self.P.nbytes() / 2**20:.0f} MiB")
         self.factor_seconds = time.perf_counter() - t0
@@ -335,10 +334,8 @@ class GridFFTSystem(LinearSystem):
         if options.precision == "single" and options.tolerance < SINGLE_TOLERANCE:
             progress(f"single precision: stopping at residual {SINGLE_TOLERANCE:g} "
                      f"instead of {options.tolerance:g}")
-        self.products = 0
 
     def matvec(self, x):
-        self.products += 1
         M = x.reshape(-1, 3)
         return (M - np.einsum("eij,ej->ei", self.chi, self.K(M))).ravel()
 
@@ -381,7 +378,9 @@ class GridFFTSystem(LinearSystem):
         preconditioned by chi: the same residual as I - chi K, one product per
         iteration and no Krylov basis (Galerkin Newell tensors make K
         symmetric; chi symmetric positive definite in every cell)."""
-        inv = np.linalg.inv(self.chi)
+        if self.chi_inv is None:          # once per system: solve_many calls this per field
+            self.chi_inv = np.linalg.inv(self.model.body_chi())[self.model.mesh.body_id]
+        inv = self.chi_inv
 
         def matvec(x):
             M = x.reshape(-1, 3)
@@ -398,15 +397,6 @@ class GridFFTSystem(LinearSystem):
 #: (8 bytes x unknowns x restart), and short restarts cost many iterations at
 #: high chi.
 PLAIN_RESTART = 150
-
-#: Above this susceptibility the hex FFT solve uses the multilevel
-#: preconditioner; below, plain GMRES is faster (measured on voxel spheres:
-#: chi = 10 needs 27 plain iterations, 16 preconditioned ones at ~5x the cost).
-MULTILEVEL_CHI = 30.0
-#: ... and up to this many cells, where it is measured to work (see the
-#: limits in :mod:`volmag.multilevel`); beyond, conjugate gradients (or plain
-#: GMRES with a long restart when some chi is not symmetric positive definite).
-MULTILEVEL_MAX_CELLS = 120_000
 
 #: Residual a single-precision fast operator can reach reliably.
 SINGLE_TOLERANCE = 1e-6

@@ -43,6 +43,7 @@ from distributed.diagnostics.plugin import WorkerPlugin
 
 from . import __version__
 from .case import KEYS, CaseError, _Context, _format_path, key_lines, parse_case
+from .machine import usable_cores
 from .progress import QUIET, Progress
 from .run import summary_json
 from .sweeptable import scalars, store, write_table
@@ -458,11 +459,6 @@ def stored_summary(path: Path, sha256: str) -> dict | None:
         return json.loads(data.decode() if isinstance(data, bytes) else data)
     except (OSError, ValueError, KeyError):
         return None
-
-
-def usable_cores() -> int:
-    """Cores this process may run on."""
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
 
 
 class _IgnoreInterrupt(WorkerPlugin):
